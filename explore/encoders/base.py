@@ -1,0 +1,54 @@
+"""The small protocol every encoder family implements.
+
+An encoder turns images into two kinds of L2-normalised float32 vectors:
+
+- ``cluster`` vectors, used to find usage contexts (UMAP + HDBSCAN) and to
+  compare brands by what their photos look like;
+- ``joint`` vectors, living in the same space as ``encode_texts``, used to
+  score attributes and name contexts zero-shot.
+
+For CLIP both are the same image embedding. For the bundled encoder the
+cluster vector is the CNN's pooled feature and the joint vector is the ConSE
+vector in the sentence encoder's space.
+
+Embedding is a pure function of a batch: ``preprocess`` one decoded image into
+a tensor, stack, then ``encode_images``. That keeps decoding (I/O) outside and
+lets the batch step run anywhere.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Protocol, runtime_checkable
+
+import numpy as np
+
+if TYPE_CHECKING:  # torch is imported lazily at run time
+    import torch
+    from PIL import Image
+
+
+class EncoderUnavailable(RuntimeError):
+    """The encoder cannot run here (e.g. weights missing); the message says how to fix it."""
+
+
+@runtime_checkable
+class Encoder(Protocol):
+    #: Changes whenever the model or its weights change; keys the cache.
+    id: str
+    #: "clip" or "bundled".
+    family: str
+    #: Side of the square model input, in pixels (lets decoding draft-scale JPEGs).
+    input_size: int
+    #: Scale and bias applied to cosine-similarity differences when scoring
+    #: a prompt pair: p = sigmoid(logit_scale * (s_pos - s_neg) + logit_bias).
+    logit_scale: float
+    logit_bias: float
+
+    def preprocess(self, image: "Image.Image") -> "torch.Tensor":
+        """One RGB PIL image -> a CHW float tensor ready for batching."""
+
+    def encode_images(self, batch: "torch.Tensor") -> dict[str, np.ndarray]:
+        """NCHW batch -> {"cluster": (n, d_c), "joint": (n, d_j)}, L2-normalised float32."""
+
+    def encode_texts(self, texts: list[str]) -> np.ndarray:
+        """Texts -> (m, d_j) L2-normalised float32 vectors in the joint space."""

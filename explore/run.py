@@ -1,0 +1,163 @@
+"""Run a study end to end: every stage in data-flow order, tables written to disk.
+
+This is the one place that knows the order of the stages. Each stage returns
+named tables; this module writes them (CSV and Parquet) into the study's
+output folder and records what was done in ``run.json``.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from dataclasses import asdict, dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Callable
+
+import pandas as pd
+
+from explore.study import Study
+
+
+@dataclass
+class RunSummary:
+    """What a run did, for printing and for ``run.json``."""
+
+    study: str
+    output: Path
+    encoder_id: str = ""
+    encoder_notice: str = ""
+    images_found: int = 0
+    images_used: int = 0
+    images_skipped: int = 0
+    images_embedded: int = 0
+    stage_seconds: dict[str, float] = field(default_factory=dict)
+    tables: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    report: Path | None = None
+
+
+def write_tables(folder: Path, tables: dict[str, pd.DataFrame]) -> list[str]:
+    """Write each table as NAME.csv and NAME.parquet; returns the names written."""
+    folder.mkdir(parents=True, exist_ok=True)
+    written = []
+    for name, table in tables.items():
+        table.to_csv(folder / f"{name}.csv", index=False)
+        table.to_parquet(folder / f"{name}.parquet", index=False)
+        written.append(name)
+    return written
+
+
+def _jsonable(value):
+    if isinstance(value, Path):
+        return str(value)
+    if isinstance(value, dict):
+        return {k: _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    return value
+
+
+def run_study(
+    study: Study,
+    *,
+    encoder_name: str | None = None,
+    weights: Path | None = None,
+    progress: bool = True,
+    log: Callable[[str], None] = print,
+) -> RunSummary:
+    """Run every stage of ``study`` and write its outputs.
+
+    Parameters
+    ----------
+    study : the validated study.
+    encoder_name : overrides ``study.encoder.name`` (e.g. from the command line).
+    weights : overrides ``study.encoder.weights``.
+    progress : show progress bars on long steps.
+    log : where one-line notices go.
+
+    Returns
+    -------
+    RunSummary
+    """
+    from explore import collect, embed
+    from explore.encoders import load_encoder
+
+    out = study.output
+    out.mkdir(parents=True, exist_ok=True)
+    summary = RunSummary(study=study.name, output=out)
+    timer = _StageTimer(summary)
+
+    with timer("collect"):
+        images = collect.collect_study_images(study)
+        summary.images_found = len(images)
+        summary.images_used = int((images["status"] == "ok").sum())
+        summary.images_skipped = summary.images_found - summary.images_used
+        summary.tables += write_tables(
+            out, {"images": images, "skipped": collect.skipped_files(images)}
+        )
+
+    with timer("embed"):
+        settings = study.encoder
+        encoder, notice = load_encoder(
+            encoder_name or settings.name,
+            model=settings.model,
+            pretrained=settings.pretrained,
+            weights=weights or settings.weights,
+        )
+        summary.encoder_id = encoder.id
+        summary.encoder_notice = notice
+        if notice:
+            log(notice)
+        embeddings, stats = embed.embed_table(
+            images,
+            encoder,
+            cache_dir=out / "cache",
+            batch_size=settings.batch_size,
+            progress=progress,
+        )
+        summary.images_embedded = stats.embedded
+        log(stats.describe())
+
+    # Later stages are added here, in data-flow order (attributes, contexts,
+    # compare, report). Each writes its tables with write_tables(out, ...).
+
+    record = {
+        "study": study.name,
+        "study_file": str(study.path) if study.path else "",
+        "written_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        "encoder_id": summary.encoder_id,
+        "encoder_notice": summary.encoder_notice,
+        "counts": {
+            "found": summary.images_found,
+            "used": summary.images_used,
+            "skipped": summary.images_skipped,
+            "embedded_this_run": summary.images_embedded,
+        },
+        "stage_seconds": summary.stage_seconds,
+        "settings": _jsonable(asdict(study)),
+        "tables": summary.tables,
+        "notes": summary.notes,
+    }
+    (out / "run.json").write_text(json.dumps(record, indent=2), encoding="utf-8")
+    return summary
+
+
+class _StageTimer:
+    """Context manager factory that records wall time per stage."""
+
+    def __init__(self, summary: RunSummary):
+        self.summary = summary
+
+    def __call__(self, name: str):
+        summary = self.summary
+
+        class _Timer:
+            def __enter__(self):
+                self.start = time.perf_counter()
+
+            def __exit__(self, *exc):
+                summary.stage_seconds[name] = round(time.perf_counter() - self.start, 2)
+                return False
+
+        return _Timer()

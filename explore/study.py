@@ -1,0 +1,370 @@
+"""The study file: a TOML document turned into validated dataclasses.
+
+A study names the image sources, the brands and their categories, the encoder,
+the attributes to score and the settings of every stage. Every key has a
+default except the image source; an unknown key or a value of the wrong kind
+is refused with the file, the key and what was expected, so a typo never
+silently falls back to a default.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, get_args, get_origin, get_type_hints
+
+ENCODER_NAMES = ("auto", "bundled", "clip")
+DEFAULT_CLIP_MODEL = "ViT-B-32"
+DEFAULT_CLIP_PRETRAINED = "laion2b_s34b_b79k"
+DEFAULT_TEMPLATES = ["a photo that feels {}", "a picture that looks {}", "{}"]
+
+
+class StudyError(ValueError):
+    """A study file (or a value meant for one) is not valid."""
+
+
+@dataclass
+class ImagesSettings:
+    """Where the images come from.
+
+    root: folder tree ``ROOT/<brand>/<source>/...``, or the folder that manifest
+        paths are relative to (and may not escape).
+    manifest: optional CSV with columns path, brand, source[, category, posted_at].
+    """
+
+    root: Path | None = None
+    manifest: Path | None = None
+
+
+@dataclass
+class EncoderSettings:
+    """Which encoder turns images and texts into vectors."""
+
+    name: str = "auto"
+    model: str = DEFAULT_CLIP_MODEL
+    pretrained: str = DEFAULT_CLIP_PRETRAINED
+    weights: Path | None = None
+    batch_size: int = 32
+
+
+@dataclass
+class Attribute:
+    """An attribute to score zero-shot: a name and descriptions of both sides."""
+
+    name: str
+    positive: list[str]
+    negative: list[str]
+    threshold: float | None = None
+
+
+@dataclass
+class ScoringSettings:
+    """How attribute descriptions become prompts and probabilities become calls."""
+
+    templates: list[str] = field(default_factory=lambda: list(DEFAULT_TEMPLATES))
+    threshold: float = 0.5
+    bootstrap_samples: int = 1000
+
+
+@dataclass
+class ContextSettings:
+    """Settings of context discovery (UMAP + HDBSCAN) and brand x context tests.
+
+    ``None`` for min_cluster_size or neighbours means: scale with the number of
+    images (the values used are recorded with the results).
+    """
+
+    min_cluster_size: int | None = None
+    min_samples: int | None = None
+    neighbours: int | None = None
+    cluster_dimensions: int = 10
+    vocabulary: Path | None = None
+    extra_phrases: list[str] = field(default_factory=list)
+    replace_vocabulary: bool = False
+    exemplars: int = 6
+    fdr: float = 0.05
+    min_index: float = 120.0
+    min_count: int = 5
+    rare_category_share: float = 0.05
+
+
+@dataclass
+class SurveySettings:
+    """Optional survey perception scores (CSV: brand, attribute, score, ...)."""
+
+    file: Path | None = None
+
+
+@dataclass
+class ReportSettings:
+    """The self-contained HTML report."""
+
+    thumbnail_px: int = 112
+    max_thumbnails: int = 20000
+
+
+@dataclass
+class Study:
+    """One analysis: image sources, brands, encoder, attributes, settings."""
+
+    name: str
+    path: Path | None
+    output: Path
+    images: ImagesSettings
+    seed: int = 0
+    brands: dict[str, str] = field(default_factory=dict)
+    encoder: EncoderSettings = field(default_factory=EncoderSettings)
+    scoring: ScoringSettings = field(default_factory=ScoringSettings)
+    attributes: list[Attribute] = field(default_factory=list)
+    contexts: ContextSettings = field(default_factory=ContextSettings)
+    survey: SurveySettings = field(default_factory=SurveySettings)
+    report: ReportSettings = field(default_factory=ReportSettings)
+
+    def category_of(self, brand: str) -> str:
+        """The brand's category as declared in ``[brands]``, else ``"all"``."""
+        return self.brands.get(brand, "all")
+
+
+# --------------------------------------------------------------------------
+# Reading and validating
+
+
+_TOP_LEVEL_KEYS = {
+    "name": "a text",
+    "output": "a folder path",
+    "seed": "a whole number",
+    "images": "a table",
+    "brands": "a table of brand = category",
+    "encoder": "a table",
+    "scoring": "a table",
+    "attribute": "an array of tables ([[attribute]])",
+    "contexts": "a table",
+    "survey": "a table",
+    "report": "a table",
+}
+
+
+def load_study(path: str | Path) -> Study:
+    """Read and validate a study file.
+
+    Parameters
+    ----------
+    path : the TOML study file. Relative paths inside it are relative to it.
+
+    Returns
+    -------
+    Study
+
+    Raises
+    ------
+    StudyError naming the file, the key and what was expected.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise StudyError(f"{path}: study file not found")
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise StudyError(f"{path}: not valid TOML: {exc}") from exc
+    except UnicodeDecodeError as exc:
+        raise StudyError(f"{path}: not UTF-8 text: {exc}") from exc
+    return study_from_dict(raw, path)
+
+
+def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
+    """Validate a parsed study document; ``path`` anchors relative paths."""
+    where = str(path) if path else "<study>"
+    base = path.parent if path else Path.cwd()
+    for key in raw:
+        if key not in _TOP_LEVEL_KEYS:
+            raise StudyError(
+                f"{where}: unknown key '{key}'; expected one of: {', '.join(_TOP_LEVEL_KEYS)}"
+            )
+
+    name = _expect(raw.get("name", path.stem if path else "study"), str, where, "name")
+    seed = _expect(raw.get("seed", 0), int, where, "seed")
+    output = _resolve(Path(_expect(raw.get("output", "outputs"), str, where, "output")), base)
+
+    images = _section(raw, "images", ImagesSettings, where, base)
+    if images.root is None and images.manifest is None:
+        raise StudyError(f"{where}: [images] needs 'root' (a folder) or 'manifest' (a CSV file)")
+    if images.manifest is not None and images.root is None:
+        images.root = images.manifest.parent
+
+    brands_raw = raw.get("brands", {})
+    if not isinstance(brands_raw, dict):
+        raise StudyError(f"{where}: key 'brands' must be a table of brand = category")
+    brands = {}
+    for brand, category in brands_raw.items():
+        brands[str(brand)] = _expect(category, str, where, f"brands.{brand}")
+
+    encoder = _section(raw, "encoder", EncoderSettings, where, base)
+    if encoder.name not in ENCODER_NAMES:
+        raise StudyError(
+            f"{where}: key 'encoder.name' is '{encoder.name}'; expected one of {', '.join(ENCODER_NAMES)}"
+        )
+    if encoder.batch_size < 1:
+        raise StudyError(f"{where}: key 'encoder.batch_size' must be at least 1")
+
+    scoring = _section(raw, "scoring", ScoringSettings, where, base)
+    if not 0.0 < scoring.threshold < 1.0:
+        raise StudyError(f"{where}: key 'scoring.threshold' must lie strictly between 0 and 1")
+    for template in scoring.templates:
+        check_template(template, f"{where}: key 'scoring.templates'")
+
+    attr_raw = raw.get("attribute", [])
+    if not isinstance(attr_raw, list):
+        raise StudyError(f"{where}: key 'attribute' must be an array of tables ([[attribute]])")
+    attributes = [_attribute(item, where, i) for i, item in enumerate(attr_raw)]
+    check_attributes(attributes, where)
+
+    contexts = _section(raw, "contexts", ContextSettings, where, base)
+    survey = _section(raw, "survey", SurveySettings, where, base)
+    report = _section(raw, "report", ReportSettings, where, base)
+
+    return Study(
+        name=name,
+        path=path,
+        output=output,
+        images=images,
+        seed=seed,
+        brands=brands,
+        encoder=encoder,
+        scoring=scoring,
+        attributes=attributes,
+        contexts=contexts,
+        survey=survey,
+        report=report,
+    )
+
+
+def check_template(template: str, where: str) -> None:
+    """A template must hold exactly one empty ``{}`` field."""
+    import string
+
+    try:
+        fields = [f for _, f, _, _ in string.Formatter().parse(template) if f is not None]
+    except ValueError as exc:
+        raise StudyError(f"{where}: template '{template}' is malformed: {exc}") from exc
+    if fields != [""]:
+        raise StudyError(
+            f"{where}: template '{template}' must contain exactly one '{{}}' and no named fields"
+        )
+
+
+def check_attributes(attributes: list[Attribute], where: str) -> None:
+    """Refuse empty sides, empty descriptions and duplicate names, naming the attribute."""
+    seen: set[str] = set()
+    for attr in attributes:
+        label = f"{where}: attribute '{attr.name}'"
+        if not attr.name.strip():
+            raise StudyError(f"{where}: an attribute has an empty name")
+        if attr.name in seen:
+            raise StudyError(f"{label} is defined twice")
+        seen.add(attr.name)
+        for side in ("positive", "negative"):
+            texts = getattr(attr, side)
+            if not texts:
+                raise StudyError(f"{label} has no {side} description")
+            if any(not t.strip() for t in texts):
+                raise StudyError(f"{label} has an empty {side} description")
+            for text in texts:
+                if "{" in text or "}" in text:
+                    raise StudyError(
+                        f"{label}: {side} description '{text}' contains a brace; "
+                        "fields such as {} belong in scoring.templates, not in descriptions"
+                    )
+        if attr.threshold is not None and not 0.0 < attr.threshold < 1.0:
+            raise StudyError(f"{label}: threshold must lie strictly between 0 and 1")
+
+
+def _attribute(item: Any, where: str, index: int) -> Attribute:
+    if not isinstance(item, dict):
+        raise StudyError(f"{where}: attribute #{index + 1} must be a table")
+    name = item.get("name")
+    label = f"attribute '{name}'" if name else f"attribute #{index + 1}"
+    allowed = {f.name for f in dataclasses.fields(Attribute)}
+    for key in item:
+        if key not in allowed:
+            raise StudyError(
+                f"{where}: {label}: unknown key '{key}'; expected one of: {', '.join(sorted(allowed))}"
+            )
+    if not isinstance(name, str):
+        raise StudyError(f"{where}: {label}: key 'name' must be a text")
+
+    def texts(key: str) -> list[str]:
+        value = item.get(key, [])
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            raise StudyError(f"{where}: {label}: key '{key}' must be a text or a list of texts")
+        return value
+
+    threshold = item.get("threshold")
+    if threshold is not None and (isinstance(threshold, bool) or not isinstance(threshold, (int, float))):
+        raise StudyError(f"{where}: {label}: key 'threshold' must be a number")
+    return Attribute(
+        name=name,
+        positive=texts("positive"),
+        negative=texts("negative"),
+        threshold=float(threshold) if threshold is not None else None,
+    )
+
+
+def _section(raw: dict, key: str, cls: type, where: str, base: Path):
+    """Build the dataclass ``cls`` from table ``raw[key]``, checking keys and kinds."""
+    table = raw.get(key, {})
+    if not isinstance(table, dict):
+        raise StudyError(f"{where}: key '{key}' must be a table")
+    hints = get_type_hints(cls)
+    names = [f.name for f in dataclasses.fields(cls)]
+    values = {}
+    for sub, value in table.items():
+        if sub not in hints:
+            raise StudyError(
+                f"{where}: unknown key '{key}.{sub}'; expected one of: {', '.join(names)}"
+            )
+        values[sub] = _coerce(value, hints[sub], where, f"{key}.{sub}", base)
+    return cls(**values)
+
+
+def _coerce(value: Any, hint: Any, where: str, key: str, base: Path) -> Any:
+    optional = False
+    args = get_args(hint)
+    if type(None) in args:
+        optional = True
+        hint = next(a for a in args if a is not type(None))
+    if optional and (value is None or value == ""):
+        return None
+    if hint is Path:
+        return _resolve(Path(_expect(value, str, where, key, "a path")), base)
+    if get_origin(hint) is list:
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            raise StudyError(f"{where}: key '{key}' must be a list of texts")
+        return list(value)
+    if hint is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise StudyError(f"{where}: key '{key}' is {value!r}; expected a number")
+        return float(value)
+    if hint is int:
+        return _expect(value, int, where, key, "a whole number")
+    if hint is bool:
+        return _expect(value, bool, where, key, "true or false")
+    if hint is str:
+        return _expect(value, str, where, key, "a text")
+    raise StudyError(f"{where}: key '{key}' has an unsupported type")  # pragma: no cover
+
+
+def _expect(value: Any, kind: type, where: str, key: str, what: str | None = None) -> Any:
+    ok = isinstance(value, kind) and not (kind is int and isinstance(value, bool))
+    if not ok:
+        what = what or {str: "a text", int: "a whole number", bool: "true or false"}.get(kind, kind.__name__)
+        raise StudyError(f"{where}: key '{key}' is {value!r}; expected {what}")
+    return value
+
+
+def _resolve(p: Path, base: Path) -> Path:
+    p = p.expanduser()
+    return p if p.is_absolute() else (base / p).resolve()
