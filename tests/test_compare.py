@@ -1,0 +1,391 @@
+"""Tests of explore/compare.py: survey input, agreement, brand maps, summary.
+
+Every numeric check names its outside reference beside it. Fixtures are small
+synthetic tables built here; the demo-scenario tests at the end use the
+session fixture ``demo_run`` from conftest.py.
+"""
+
+from __future__ import annotations
+
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+from scipy.spatial import procrustes as scipy_procrustes
+from scipy.spatial.distance import cdist, pdist
+from sklearn.decomposition import PCA
+from sklearn.preprocessing import StandardScaler
+
+from explore import compare
+
+BRANDS = {"Alba": "drinks", "Brio": "drinks", "Cora": "drinks", "Dune": "gear", "Echo": "gear", "Fjel": "gear"}
+ATTRIBUTES = ["rugged", "glamorous", "sincere", "exciting", "competent"]
+
+
+def make_shares(consumer: dict, owned: dict | None = None) -> pd.DataFrame:
+    """An ``attribute_shares`` table (contract columns in DEVELOPERS.md) from
+    {brand: {attribute: share}} dictionaries."""
+    owned = owned if owned is not None else consumer
+    rows = []
+    for source, values in (("consumer", consumer), ("owned", owned)):
+        for brand, per in values.items():
+            for attribute, share in per.items():
+                rows.append(
+                    {
+                        "level": "brand", "brand": brand, "category": BRANDS.get(brand, "other"),
+                        "source": source, "attribute": attribute, "n": 40,
+                        "positives": round(share * 40), "share": share,
+                        "share_low": max(0.0, share - 0.1), "share_high": min(1.0, share + 0.1),
+                        "mean_probability": share, "mean_low": share, "mean_high": share,
+                        "threshold": 0.5, "encoder_id": "test",
+                    }
+                )
+    table = pd.DataFrame(rows)
+    # category-level rows exist in the real table and must be ignored here
+    cat = table.groupby(["category", "source", "attribute"], as_index=False)["share"].mean()
+    cat["level"], cat["brand"], cat["n"] = "category", "", 120
+    return pd.concat([table, cat], ignore_index=True)
+
+
+def random_profiles(seed: int) -> dict:
+    rng = np.random.default_rng(seed)
+    return {b: {a: float(rng.uniform(0.05, 0.95)) for a in ATTRIBUTES} for b in BRANDS}
+
+
+def write_survey(path, rows, header="brand,attribute,score") -> None:
+    path.write_text(header + "\n" + "\n".join(rows) + "\n", encoding="utf-8")
+
+
+# --------------------------------------------------------------------------
+# Agreement statistics
+
+
+@pytest.mark.parametrize("n", [3, 5, 8, 13])
+def test_concordant_share_is_half_one_plus_tau_without_ties(n):
+    rng = np.random.default_rng(n)
+    x = rng.permutation(n).astype(float) + rng.uniform(0, 0.1, n)
+    y = x + rng.normal(0, n / 3, n)
+    assert len(set(x)) == n and len(set(y)) == n  # tie-free, so tau-a == tau-b
+    counts = compare.pair_counts(x, y)
+    assert counts["ties"] == 0
+    # Kendall 1938: tau-a = (C - D) / P; with no ties concordant share = (1 + tau-a) / 2.
+    # tau computed with scipy.stats.kendalltau(variant="b"), equal to tau-a on tie-free data.
+    tau = stats.kendalltau(x, y, variant="b").statistic
+    assert counts["concordant_share"] == pytest.approx((1 + tau) / 2, abs=1e-12)
+
+
+@pytest.mark.parametrize("seed, with_ties", [(1, False), (2, True), (3, True), (4, False)])
+def test_statistics_equal_scipy(seed, with_ties):
+    rng = np.random.default_rng(seed)
+    n = 9
+    x = rng.normal(size=n)
+    y = 0.6 * x + rng.normal(size=n)
+    if with_ties:
+        x = np.round(x)  # several brands share a value
+        y = np.round(y * 2) / 2
+    x[4] = np.nan  # a brand without this metric is left out of the pair
+    got = compare.pair_agreement(x, y)
+    keep = ~np.isnan(x)
+    xs, ys = x[keep], y[keep]
+    # references: scipy.stats.kendalltau (tau-b), spearmanr, pearsonr
+    tau = stats.kendalltau(xs, ys)
+    rho = stats.spearmanr(xs, ys)
+    r = stats.pearsonr(xs, ys)
+    assert got["n_brands"] == n - 1
+    assert got["kendall_tau"] == pytest.approx(tau.statistic, abs=1e-12)
+    assert got["kendall_p"] == pytest.approx(tau.pvalue, abs=1e-12)
+    assert got["spearman_rho"] == pytest.approx(rho.statistic, abs=1e-12)
+    assert got["spearman_p"] == pytest.approx(rho.pvalue, abs=1e-12)
+    assert got["pearson_r"] == pytest.approx(r.statistic, abs=1e-12)
+    assert got["pearson_p"] == pytest.approx(r.pvalue, abs=1e-12)
+    assert got["concordant"] + got["discordant"] + got["ties"] == got["pairs"] == (n - 1) * (n - 2) // 2
+    if with_ties:
+        assert got["ties"] > 0 and "tied" in got["note"]
+
+
+def test_pair_counts_by_hand():
+    # worked by hand: x = 1,2,3,4; y = 1,3,2,3 -> pairs (12)+ (13)+ (14)+ (23)- (24)tie-y (34)+
+    got = compare.pair_counts([1, 2, 3, 4], [1, 3, 2, 3])
+    assert (got["concordant"], got["discordant"], got["ties"], got["ties_b"]) == (4, 1, 1, 1)
+    assert got["concordant_share"] == pytest.approx(4 / 6)
+
+
+def test_too_few_brands_gives_counts_and_a_note():
+    got = compare.pair_agreement([0.2, 0.5], [3.0, 4.0])
+    assert got["n_brands"] == 2 and got["pairs"] == 1 and got["concordant"] == 1
+    assert np.isnan(got["kendall_tau"]) and np.isnan(got["pearson_p"])
+    assert got["note"].startswith("too few brands")
+
+    # through the table: a category with two brands
+    consumer = {b: p for b, p in random_profiles(5).items() if b in ("Alba", "Brio", "Dune", "Echo", "Fjel")}
+    tables, notes = compare.compare_study(make_shares(consumer))
+    rows = tables["agreement"]
+    drinks = rows[rows["category"] == "drinks"]
+    assert (drinks["n_brands"] == 2).all() and drinks["kendall_tau"].isna().all()
+    assert drinks["note"].str.startswith("too few brands").all()
+    gear = rows[rows["category"] == "gear"]
+    assert gear["kendall_tau"].notna().all()
+    assert any("too few brands" in n and "drinks" in n for n in notes)
+
+
+def test_constant_metric_is_explained_not_computed():
+    got = compare.pair_agreement([0.0, 0.0, 0.0, 0.0], [1.0, 2.0, 3.0, 4.0])
+    assert np.isnan(got["spearman_rho"]) and "same for every brand" in got["note"]
+
+
+def test_agreement_table_covers_categories_attributes_and_metric_pairs(tmp_path):
+    consumer = random_profiles(7)
+    survey_path = tmp_path / "survey.csv"
+    write_survey(survey_path, [f"{b},{a},{v * 7:.3f}" for b, per in consumer.items() for a, v in per.items()])
+    tables, _ = compare.compare_study(make_shares(consumer, random_profiles(8)), survey=compare.read_survey(survey_path))
+    agreement = tables["agreement"]
+    assert set(agreement["category"]) == {"drinks", "gear", compare.ALL_CATEGORIES}
+    pairs = set(zip(agreement["metric_a"], agreement["metric_b"]))
+    assert pairs == {("consumer_share", "owned_share"), ("consumer_share", "survey_score"), ("owned_share", "survey_score")}
+    assert len(agreement) == 3 * len(ATTRIBUTES) * 3
+    # survey built as 7 x consumer share: a perfect linear and rank agreement
+    cs = agreement[(agreement["metric_a"] == "consumer_share") & (agreement["metric_b"] == "survey_score")]
+    assert (cs["concordant_share"] == 1.0).all()
+    assert np.allclose(cs["pearson_r"], 1.0, atol=1e-6)
+
+
+def test_rank_gaps_by_hand():
+    metrics = pd.DataFrame(
+        {
+            "category": ["c"] * 3,
+            "brand": ["A", "B", "C"],
+            "attribute": ["x"] * 3,
+            "consumer_share": [0.9, 0.5, 0.1],  # ranks 1, 2, 3
+            "owned_share": [0.9, 0.5, 0.1],
+            "survey_score": [1.0, 2.0, 3.0],  # ranks 3, 2, 1
+        }
+    )
+    gaps = compare.rank_gaps(metrics, "survey_score").set_index("brand")["rank_gap"]
+    assert gaps.to_dict() == {"A": 2.0, "B": 0.0, "C": 2.0}
+
+
+# --------------------------------------------------------------------------
+# Survey input
+
+
+def test_unknown_survey_brands_and_attributes_are_reported_by_name(tmp_path):
+    consumer = random_profiles(11)
+    rows = [f"{b},{a},{v * 5:.2f},{BRANDS[b]}" for b, per in consumer.items() for a, v in per.items()]
+    rows += ["Albba,rugged,3.0,drinks", "Nova,rugged,2.0,gear", "Alba,rugedness,4.0,drinks", "Echo,rugged2,1,drinks"]
+    rows.remove(next(r for r in rows if r.startswith("Echo,rugged,")))
+    rows.append("Echo,rugged,2.5,drinks")  # category disagrees with the study
+    path = tmp_path / "survey.csv"
+    write_survey(path, rows, header="brand,attribute,score,category")
+    tables, notes = compare.compare_study(make_shares(consumer), survey=compare.read_survey(path))
+    survey = tables["survey"].set_index(["brand", "attribute"])
+    assert survey.loc[("Albba", "rugged"), "status"] == "unknown brand"
+    assert "did you mean 'Alba'?" in survey.loc[("Albba", "rugged"), "note"]
+    assert survey.loc[("Nova", "rugged"), "status"] == "unknown brand"
+    assert survey.loc[("Alba", "rugedness"), "status"] == "unknown attribute"
+    assert "category" in survey.loc[("Echo", "rugged"), "note"]
+    assert len(tables["survey"]) == len(rows)  # nothing dropped
+    text = "\n".join(notes)
+    assert "'Albba' (did you mean 'Alba'?)" in text and "'Nova'" in text
+    assert "'rugedness'" in text and "'rugged2'" in text
+    assert "category differs from the study for Echo" in text
+    assert f"survey: {len(consumer) * len(ATTRIBUTES)} of {len(rows)} rows used" in text
+
+
+@pytest.mark.parametrize(
+    "header, row, message",
+    [
+        ("brand,attribute", "Alba,rugged", "missing column(s) score"),
+        ("brand,attribute,score", "Alba,rugged,high", "row 2: column 'score' is 'high'"),
+        ("brand,attribute,score", "Alba,rugged,", "row 2: column 'score' is empty"),
+        ("brand,attribute,score", ",rugged,3", "row 2: column 'brand' is empty"),
+        ("brand,attribute,score,sample_size", "Alba,rugged,3,-4", "column 'sample_size'"),
+        ("brand,attribute,score", "Alba,rugged,3\nAlba,rugged,4", "row 3: brand 'Alba', attribute 'rugged' already scored in row 2"),
+    ],
+)
+def test_bad_survey_files_are_refused_with_file_and_row(tmp_path, header, row, message):
+    path = tmp_path / "s.csv"
+    write_survey(path, [row], header=header)
+    with pytest.raises(compare.SurveyError) as err:
+        compare.read_survey(path)
+    assert message in str(err.value) and str(path) in str(err.value)
+
+
+def test_study_without_survey_still_compares_sources():
+    tables, notes = compare.compare_study(make_shares(random_profiles(3), random_profiles(4)))
+    assert tables["survey"].empty
+    assert set(tables["agreement"]["metric_b"]) == {"owned_share"}
+    assert set(tables["brand_map"]["source"]) == {"consumer", "owned"}
+    assert tables["brand_displacement"]["displacement"].notna().all()
+    assert tables["brand_displacement"]["survey_rank_gap"].isna().all()
+    assert any("none in the study" in n for n in notes)
+
+
+# --------------------------------------------------------------------------
+# PCA, MDS, Procrustes against references
+
+
+@pytest.mark.parametrize("shape", [(6, 5), (12, 4), (5, 9)])
+def test_pca_matches_sklearn_up_to_sign(shape):
+    rng = np.random.default_rng(shape[0] * 10 + shape[1])
+    x = rng.normal(size=shape) * rng.uniform(0.5, 3, shape[1]) + rng.uniform(-2, 2, shape[1])
+    z, varies = compare.standardise(x)
+    assert varies.all()
+    # reference: sklearn.preprocessing.StandardScaler (population sd)
+    assert np.allclose(z, StandardScaler().fit_transform(x), atol=1e-10)
+    ours = compare.pca(z, 2)
+    # reference: sklearn.decomposition.PCA
+    ref = PCA(n_components=2, svd_solver="full").fit(z)
+    ref_scores = ref.transform(z)
+    for c in range(2):
+        sign = np.sign(ours["scores"][:, c] @ ref_scores[:, c])
+        assert np.allclose(ours["scores"][:, c], sign * ref_scores[:, c], atol=1e-9)
+        assert np.allclose(ours["components"][c], sign * ref.components_[c], atol=1e-9)
+    assert np.allclose(ours["explained_variance"], ref.explained_variance_, atol=1e-10)
+    assert np.allclose(ours["explained_variance_ratio"], ref.explained_variance_ratio_, atol=1e-10)
+
+
+def test_biplot_loadings_are_attribute_component_correlations():
+    consumer = random_profiles(21)
+    brand_map, loadings, _ = compare.brand_maps(compare.brand_metrics(make_shares(consumer)))
+    cmap = brand_map[brand_map["source"] == "consumer"].set_index("brand")
+    profile = pd.DataFrame(consumer).T.loc[cmap.index]
+    for rec in loadings[loadings["source"] == "consumer"].itertuples():
+        # Gabriel 1971: in the correlation biplot of standardised data the
+        # arrow coordinates are correlations of the variable with the components;
+        # reference: numpy.corrcoef
+        r1 = np.corrcoef(profile[rec.attribute], cmap["pc1"])[0, 1]
+        r2 = np.corrcoef(profile[rec.attribute], cmap["pc2"])[0, 1]
+        assert rec.loading_1 == pytest.approx(r1, abs=1e-9)
+        assert rec.loading_2 == pytest.approx(r2, abs=1e-9)
+    assert cmap["explained_1"].iloc[0] >= cmap["explained_2"].iloc[0] > 0
+
+
+@pytest.mark.parametrize("reflect", [False, True])
+def test_procrustes_agrees_with_scipy(reflect):
+    rng = np.random.default_rng(7 + reflect)
+    target = rng.normal(size=(7, 2))
+    angle = 0.9
+    rot = np.array([[np.cos(angle), -np.sin(angle)], [np.sin(angle), np.cos(angle)]])
+    if reflect:
+        rot = rot @ np.diag([1, -1])
+    moving = 2.5 * target @ rot + np.array([3.0, -1.0]) + rng.normal(0, 0.2, size=(7, 2))
+    ours = compare.procrustes(target, moving)
+    # reference: scipy.spatial.procrustes (both standardised: centred, unit Frobenius norm)
+    mtx1, mtx2, disparity = scipy_procrustes(target, moving)
+    centred = target - target.mean(axis=0)
+    norm = np.linalg.norm(centred)
+    assert np.allclose(centred / norm, mtx1, atol=1e-12)
+    assert np.allclose((ours["aligned"] - target.mean(axis=0)) / norm, mtx2, atol=1e-10)
+    assert ours["disparity"] == pytest.approx(disparity, abs=1e-12)
+    assert np.allclose(ours["rotation"] @ ours["rotation"].T, np.eye(2), atol=1e-12)
+
+
+def test_procrustes_recovers_an_exact_similarity_transform():
+    rng = np.random.default_rng(3)
+    target = rng.normal(size=(6, 2))
+    rot = np.array([[0.0, 1.0], [-1.0, 0.0]])
+    moving = 0.4 * target @ rot.T - 5
+    ours = compare.procrustes(target, moving)
+    # by construction (no noise): alignment is exact, disparity 0
+    assert np.allclose(ours["aligned"], target, atol=1e-10)
+    assert ours["disparity"] == pytest.approx(0.0, abs=1e-12)
+
+
+@pytest.mark.parametrize("dims", [2, 3])
+def test_classical_mds_recovers_known_distances(dims):
+    rng = np.random.default_rng(dims)
+    points = rng.normal(size=(10, dims)) * 3
+    dist = cdist(points, points)  # reference distances: scipy.spatial.distance
+    got = compare.classical_mds(dist, dims)
+    # Torgerson 1952: Euclidean distances of points in k dims are reproduced
+    # exactly by k-dimensional classical MDS
+    assert np.allclose(pdist(got["coordinates"]), pdist(points), atol=1e-6)
+    assert got["fit"] == pytest.approx(1.0, abs=1e-9)
+
+
+# --------------------------------------------------------------------------
+# Maps on planted structure
+
+
+def test_planted_owned_shift_moves_that_brand_most():
+    consumer = random_profiles(31)
+    owned = {b: dict(p) for b, p in consumer.items()}
+    # planted: Cora's own photos flip its profile; everything else identical
+    owned["Cora"] = {a: 1.0 - v for a, v in consumer["Cora"].items()}
+    tables, notes = compare.compare_study(make_shares(consumer, owned))
+    disp = tables["brand_displacement"]
+    print(disp.to_string())
+    assert disp.iloc[0]["brand"] == "Cora"
+    assert disp.set_index("brand")["owned_rank_gap"].idxmax() == "Cora"
+    assert any("moves most: Cora" in n for n in notes)
+
+
+def test_identical_sources_align_exactly():
+    consumer = random_profiles(41)
+    brand_map, loadings, _ = compare.brand_maps(compare.brand_metrics(make_shares(consumer, consumer)))
+    c = brand_map[brand_map["source"] == "consumer"].set_index("brand")
+    o = brand_map[brand_map["source"] == "owned"].set_index("brand")
+    assert np.allclose(c[["aligned_x", "aligned_y"]], o[["aligned_x", "aligned_y"]], atol=1e-9)
+    assert np.allclose(o["disparity"], 0.0, atol=1e-12)
+
+
+def _planted_embeddings():
+    rng = np.random.default_rng(5)
+    d = 12
+    centres = {b: rng.normal(size=d) for b in BRANDS}
+    centres["Fjel"] = centres["Echo"] + 0.1 * rng.normal(size=d)  # Fjel looks like Echo
+    owned_shift = rng.normal(size=d) * 3  # planted: Brio's own photos look different
+    ids, rows, vecs = [], [], []
+    for b in BRANDS:
+        for source in ("consumer", "owned"):
+            for k in range(15):
+                centre = centres[b] + (owned_shift if (b == "Brio" and source == "owned") else 0)
+                v = centre + 0.3 * rng.normal(size=d)
+                ids.append(f"{b}-{source}-{k}")
+                rows.append({"image_id": ids[-1], "brand": b, "category": BRANDS[b], "source": source, "status": "ok"})
+                vecs.append(v / np.linalg.norm(v))
+    vecs = np.asarray(vecs, dtype=np.float32)
+    return pd.DataFrame(rows), SimpleNamespace(image_ids=ids, encoder_id="test", cluster=vecs, joint=vecs[:, ::-1].copy())
+
+
+def test_vector_map_uses_cosine_distances_of_mean_vectors():
+    images, emb = _planted_embeddings()
+    table, info = compare.brand_vector_map(images, emb)
+    # reference: scipy.spatial.distance.cdist(metric="cosine") on the mean vectors
+    means = np.vstack(
+        [
+            emb.cluster[(images["brand"] == b).to_numpy() & ((images["source"] == s).to_numpy() | (s == "all"))].mean(axis=0)
+            for b, s in zip(table["brand"], table["source"])
+        ]
+    )
+    assert np.allclose(info["distances"].to_numpy(), cdist(means, means, metric="cosine"), atol=1e-6)
+    t = table.set_index(["brand", "source"])
+    assert t.loc[("Fjel", "consumer"), "nearest_brand"] == "Echo"
+    assert (t.xs("all", level="source")["n_images"] == 30).all()
+
+    consumer = random_profiles(51)
+    tables, notes = compare.compare_study(make_shares(consumer), images=images, embeddings=emb)
+    disp = tables["brand_displacement"].set_index("brand")
+    assert disp["vector_distance"].idxmax() == "Brio"
+    assert disp["vector_displacement"].idxmax() == "Brio"
+    assert any("most different: Brio" in n for n in notes)
+
+
+def test_summary_names_best_and_worst_attributes(tmp_path):
+    consumer = random_profiles(61)
+    rows = []
+    for b, per in consumer.items():
+        for a, v in per.items():
+            score = v * 10 if a != "sincere" else -v * 10  # planted: survey reverses sincerity
+            rows.append(f"{b},{a},{score:.4f}")
+    path = tmp_path / "survey.csv"
+    write_survey(path, rows)
+    tables, notes = compare.compare_study(make_shares(consumer), survey=compare.read_survey(path))
+    line = next(n for n in notes if n.startswith("agreement consumer photos vs survey"))
+    print(line)
+    best, worst = line.split("; worst ")
+    assert "sincere (0/6 pairs)" in worst and "sincere" not in best
+    per = compare.attribute_agreement(tables["agreement"], "consumer_share", "survey_score")
+    assert per.iloc[-1]["attribute"] == "sincere" and per.iloc[0]["concordant_share"] == 1.0
