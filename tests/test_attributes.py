@@ -1,0 +1,457 @@
+"""Attributes: prompt ensembling, probabilities, intervals, brand tables, the label check.
+
+Every numeric check names its outside reference beside it.
+"""
+
+from __future__ import annotations
+
+import zlib
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from explore import attributes as A
+from explore.study import Attribute, ScoringSettings, StudyError
+
+
+class HashTextEncoder:
+    """A stand-in text encoder: each text maps to a fixed random unit vector."""
+
+    def __init__(self, dim: int = 32, scale: float = 20.0, bias: float = 0.0, id: str = "test-encoder"):
+        self.dim, self.logit_scale, self.logit_bias, self.id = dim, scale, bias, id
+        self.family = "test"
+
+    def encode_texts(self, texts):
+        rows = []
+        for t in texts:
+            v = np.random.default_rng(zlib.crc32(t.encode())).normal(size=self.dim)
+            rows.append(v / np.linalg.norm(v))
+        return np.asarray(rows, dtype=np.float32)
+
+
+def _unit(x):
+    x = np.asarray(x, dtype=np.float64)
+    return (x / np.linalg.norm(x, axis=-1, keepdims=True)).astype(np.float32)
+
+
+# --------------------------------------------------------------------------
+# Intervals
+
+
+@pytest.mark.parametrize("count,n", [(0, 10), (3, 10), (10, 10), (57, 200), (1, 1), (499, 1000)])
+def test_wilson_matches_statsmodels(count, n):
+    from statsmodels.stats.proportion import proportion_confint
+
+    low, high = A.wilson_interval(count, n)
+    # Reference: statsmodels.stats.proportion.proportion_confint(method="wilson") (Wilson 1927).
+    ref_low, ref_high = proportion_confint(count, n, alpha=0.05, method="wilson")
+    assert low == pytest.approx(ref_low, abs=1e-12)
+    assert high == pytest.approx(ref_high, abs=1e-12)
+
+
+def test_wilson_vectorised_and_empty_group():
+    low, high = A.wilson_interval(np.array([0, 5, 9]), np.array([4, 10, 9]))
+    assert low.shape == (3,) and np.all(low <= np.array([0, 0.5, 1])) and np.all(high >= [0, 0.5, 1])
+    assert np.isnan(A.wilson_interval(0, 0)[0])
+
+
+@pytest.mark.parametrize(
+    "c1,n1,c2,n2",
+    [(3, 10, 7, 12), (0, 20, 5, 30), (40, 50, 40, 50), (10, 10, 0, 5), (56, 70, 48, 80), (9, 10, 3, 10)],
+)
+def test_newcombe_matches_statsmodels(c1, n1, c2, n2):
+    from statsmodels.stats.proportion import confint_proportions_2indep
+
+    low, high = A.newcombe_interval(c1, n1, c2, n2)
+    # Reference: statsmodels confint_proportions_2indep(method="newcomb", compare="diff"),
+    # Newcombe (1998) hybrid score interval (method 10).
+    ref_low, ref_high = confint_proportions_2indep(c1, n1, c2, n2, method="newcomb", compare="diff", alpha=0.05)
+    assert low == pytest.approx(ref_low, abs=1e-12)
+    assert high == pytest.approx(ref_high, abs=1e-12)
+
+
+def test_newcombe_worked_example():
+    # Newcombe (1998), Table II example (a): 56/70 vs 48/80, hybrid score interval
+    # 0.0524 to 0.3339 (values from the paper, as recalled from memory; statsmodels agrees above).
+    low, high = A.newcombe_interval(56, 70, 48, 80)
+    assert (round(float(low), 4), round(float(high), 4)) == (0.0524, 0.3339)
+
+
+def test_bootstrap_interval_is_seeded_and_agrees_with_scipy():
+    from scipy.stats import bootstrap
+
+    values = np.random.default_rng(3).beta(2, 5, size=400)
+    a = A.bootstrap_mean_interval(values, 2000, np.random.default_rng(7))
+    b = A.bootstrap_mean_interval(values, 2000, np.random.default_rng(7))
+    assert a == b  # same seed, same interval
+    # Reference: scipy.stats.bootstrap(method="percentile") on the same data; different
+    # resamples, so the bounds agree to Monte Carlo error only.
+    ref = bootstrap((values,), np.mean, n_resamples=2000, method="percentile", random_state=1).confidence_interval
+    assert a[0] == pytest.approx(ref.low, abs=0.004)
+    assert a[1] == pytest.approx(ref.high, abs=0.004)
+    assert a[0] < values.mean() < a[1]
+
+
+def test_bootstrap_columns_share_resamples_in_chunks():
+    values = np.random.default_rng(0).random((50, 3))
+    whole = A.bootstrap_mean_interval(values, 300, np.random.default_rng(1))
+    # A column bootstrapped alone sees the same resamples when the chunks are equal.
+    col = A.bootstrap_mean_interval(values[:, 1], 300, np.random.default_rng(1))
+    assert whole[0][1] == pytest.approx(col[0]) and whole[1][1] == pytest.approx(col[1])
+    small_chunks = A.bootstrap_mean_interval(values, 300, np.random.default_rng(1), chunk_elements=100)
+    assert np.all(small_chunks[0] < values.mean(axis=0)) and np.all(small_chunks[1] > values.mean(axis=0))
+
+
+# --------------------------------------------------------------------------
+# ROC, thresholds, reliability
+
+
+def test_auc_matches_sklearn_and_mann_whitney():
+    from scipy.stats import mannwhitneyu
+    from sklearn.metrics import roc_auc_score
+
+    rng = np.random.default_rng(0)
+    y = rng.integers(0, 2, 300)
+    s = np.round(rng.random(300) + 0.3 * y, 2)  # rounded: many ties
+    # Reference: sklearn.metrics.roc_auc_score; and U / (n1 n0) from scipy.stats.mannwhitneyu.
+    assert A.roc_auc(y, s) == pytest.approx(roc_auc_score(y, s), abs=1e-12)
+    u = mannwhitneyu(s[y == 1], s[y == 0]).statistic
+    assert A.roc_auc(y, s) == pytest.approx(u / (y.sum() * (1 - y).sum()), abs=1e-12)
+    auc, low, high = A.auc_interval(y, s)
+    assert auc == pytest.approx(roc_auc_score(y, s)) and low < auc < high
+
+
+def test_roc_points_and_youden_agree_with_sklearn():
+    from sklearn.metrics import roc_curve
+
+    rng = np.random.default_rng(1)
+    for trial in range(5):
+        y = rng.integers(0, 2, 200)
+        s = np.round(rng.normal(size=200) + y * rng.uniform(0.2, 2), 1)
+        # Reference: sklearn.metrics.roc_curve (every threshold kept).
+        fpr, tpr, th = roc_curve(y, s, drop_intermediate=False)
+        ours = A.roc_points(y, s)
+        np.testing.assert_allclose(ours[0], fpr[1:])
+        np.testing.assert_allclose(ours[1], tpr[1:])
+        np.testing.assert_allclose(ours[2], th[1:])
+        # Youden's J from sklearn's default (intermediate points dropped) curve.
+        fpr, tpr, th = roc_curve(y, s)
+        k = int(np.argmax(tpr - fpr))
+        threshold, j = A.youden_threshold(y, s)
+        assert threshold == pytest.approx(th[k]) and j == pytest.approx(tpr[k] - fpr[k])
+        assert A.accuracy_at(y, s, threshold) == pytest.approx(np.mean((s >= th[k]) == y))
+
+
+def test_reliability_table_matches_sklearn_calibration_curve():
+    from sklearn.calibration import calibration_curve
+
+    rng = np.random.default_rng(2)
+    p = np.round(rng.random(500), 2)  # values on bin edges included
+    y = (rng.random(500) < p).astype(int)
+    table = A.reliability_table(y, p, bins=10)
+    # Reference: sklearn.calibration.calibration_curve(strategy="uniform").
+    observed, predicted = calibration_curve(y, p, n_bins=10, strategy="uniform")
+    np.testing.assert_allclose(table["observed"], observed)
+    np.testing.assert_allclose(table["mean_predicted"], predicted)
+    assert table["n"].sum() == 500
+
+
+# --------------------------------------------------------------------------
+# Prompts and probabilities
+
+
+def test_prompt_ensembling_and_probabilities_by_hand():
+    enc = HashTextEncoder()
+    attr = Attribute("sunny", ["bright sunshine", "clear sky"], ["overcast", "rain", "fog"])
+    templates = ["a photo of {}", "{}"]
+    vec = A.attribute_vectors(attr, templates, enc.encode_texts)
+    assert vec.positive_prompts == ["a photo of bright sunshine", "bright sunshine", "a photo of clear sky", "clear sky"]
+    assert len(vec.negative_prompts) == 6 and len(vec.descriptions) == 5
+    # Radford et al. 2021 prompt ensembling: mean of normalised text vectors, renormalised.
+    expected = enc.encode_texts(vec.positive_prompts).mean(axis=0)
+    np.testing.assert_allclose(vec.positive, expected / np.linalg.norm(expected), atol=1e-6)
+    images = _unit(np.random.default_rng(0).normal(size=(20, 32)))
+    p = A.pair_probabilities(images, vec.positive, vec.negative, scale=enc.logit_scale, bias=0.3)
+    # Two-way softmax of scaled cosine similarities (Radford et al. 2021), plus the bias.
+    logits = np.stack([enc.logit_scale * images @ vec.positive + 0.3, enc.logit_scale * images @ vec.negative], 1)
+    soft = np.exp(logits - logits.max(1, keepdims=True))
+    np.testing.assert_allclose(p, soft[:, 0] / soft.sum(1), rtol=1e-5)
+    # Extreme logits neither overflow nor leave [0, 1].
+    big = A.pair_probabilities(images, vec.positive, vec.negative, scale=1e5)
+    assert np.all((big >= 0) & (big <= 1)) and not np.isnan(big).any()
+
+
+@pytest.fixture(scope="module")
+def random_open_clip():
+    """The smallest ViT config in open_clip, random weights (nothing downloaded)."""
+    import open_clip
+    import torch
+
+    torch.manual_seed(0)
+    model, _, preprocess = open_clip.create_model_and_transforms("ViT-S-32", pretrained=None)
+    model.eval()
+    return model, preprocess, open_clip.get_tokenizer("ViT-S-32")
+
+
+def test_probabilities_equal_open_clip_direct_computation(random_open_clip):
+    import torch
+
+    model, _, tokenizer = random_open_clip
+    attr = Attribute("rugged", ["rugged and tough", "muddy outdoors"], ["delicate and polished"])
+    templates = ["a photo that feels {}", "{}"]
+    torch.manual_seed(1)
+    pixels = torch.rand(6, 3, 224, 224)
+
+    # Reference: open_clip's own encode_image / encode_text on the same model; normalise,
+    # ensemble each side (Radford et al. 2021), scale by exp(logit_scale), softmax.
+    with torch.no_grad():
+        img = model.encode_image(pixels)
+        img = img / img.norm(dim=-1, keepdim=True)
+        sides = []
+        for texts in (attr.positive, attr.negative):
+            t = model.encode_text(tokenizer([tpl.format(d) for d in texts for tpl in templates]))
+            t = t / t.norm(dim=-1, keepdim=True)
+            m = t.mean(dim=0)
+            sides.append(m / m.norm())
+        logits = model.logit_scale.exp() * img @ torch.stack(sides, dim=1)
+        direct = logits.softmax(dim=-1)[:, 0].numpy()
+
+    def encode_texts(texts):
+        with torch.no_grad():
+            t = model.encode_text(tokenizer(texts))
+        return (t / t.norm(dim=-1, keepdim=True)).numpy()
+
+    vec = A.attribute_vectors(attr, templates, encode_texts)
+    ours = A.pair_probabilities(img.numpy(), vec.positive, vec.negative, float(model.logit_scale.exp().item()), 0.0)
+    np.testing.assert_allclose(ours, direct, atol=1e-5)
+    assert not np.allclose(ours, ours[0])  # the images really differ
+
+
+# --------------------------------------------------------------------------
+# Brand tables
+
+
+def _toy_study_tables(seed=0):
+    """Two brands in one category; brand A's consumer photos lean positive."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    spec = {("A", "consumer"): 120, ("A", "owned"): 80, ("B", "consumer"): 100, ("B", "owned"): 60}
+    for (brand, source), n in spec.items():
+        for i in range(n):
+            rows.append((f"{brand}{source[0]}{i:03d}", brand, "drinks", source, "ok"))
+    images = pd.DataFrame(rows, columns=["image_id", "brand", "category", "source", "status"])
+    enc = HashTextEncoder()
+    attr = Attribute("sunny", ["bright sunshine"], ["grey overcast"])
+    vec = A.attribute_vectors(attr, ["{}"], enc.encode_texts)
+    direction = vec.positive - vec.negative
+    lean = np.where((images.brand == "A") & (images.source == "consumer"), 0.08, -0.02)
+    joint = _unit(rng.normal(scale=0.05, size=(len(images), 32)) + 0.5 * (vec.positive + vec.negative) + lean[:, None] * direction)
+    return images, joint, enc, attr
+
+
+def test_attribute_tables_counts_shares_and_gaps():
+    images, joint, enc, attr = _toy_study_tables()
+    ids = images.image_id.tolist()
+    scoring = ScoringSettings(templates=["{}"], threshold=0.5, bootstrap_samples=200)
+    tables, notes = A.attribute_tables(images, ids, joint, joint, [attr], scoring, enc, seed=5)
+    assert notes == []
+    long = tables["image_attributes"]
+    assert list(long.columns) == ["image_id", "attribute", "probability", "positive"]
+    assert len(long) == len(images)
+    shares = tables["attribute_shares"]
+    merged = long.merge(images, on="image_id")
+    for (brand, source), frame in merged.groupby(["brand", "source"]):
+        row = shares[(shares.level == "brand") & (shares.brand == brand) & (shares.source == source)].iloc[0]
+        assert row.n == len(frame) and row.positives == frame.positive.sum()
+        assert row.share == pytest.approx(frame.positive.mean())
+        assert row.mean_probability == pytest.approx(frame.probability.mean(), rel=1e-5)
+        assert row.share_low <= row.share <= row.share_high
+        assert row.mean_low <= row.mean_probability <= row.mean_high
+    cat_all = shares[(shares.level == "category") & (shares.source == "all")].iloc[0]
+    assert cat_all.n == len(images) and cat_all.brand == ""
+    assert cat_all.positives == long.positive.sum()
+    assert set(shares.source) == {"consumer", "owned", "all"}
+    assert (shares.encoder_id == enc.id).all() and (shares.threshold == 0.5).all()
+
+    gaps = tables["attribute_gaps"].set_index("brand")
+    a = shares[(shares.level == "brand") & (shares.brand == "A")].set_index("source")
+    assert gaps.loc["A", "gap"] == pytest.approx(a.loc["consumer", "share"] - a.loc["owned", "share"])
+    # The planted lean: brand A's consumer photos are more often positive than its own.
+    assert gaps.loc["A", "gap"] > 0.3 and bool(gaps.loc["A", "significant"])
+    # Brand B has no lean: its interval should contain 0.
+    assert not bool(gaps.loc["B", "significant"])
+    print(shares[shares.level == "brand"][["brand", "source", "n", "share", "share_low", "share_high"]])
+
+    # Seeded: the same study seed gives the same bootstrap bounds, another seed others.
+    again, _ = A.attribute_tables(images, ids, joint, joint, [attr], scoring, enc, seed=5)
+    pd.testing.assert_frame_equal(again["attribute_shares"], shares)
+    other, _ = A.attribute_tables(images, ids, joint, joint, [attr], scoring, enc, seed=6)
+    assert not np.allclose(other["attribute_shares"].mean_low, shares.mean_low)
+
+
+def test_gap_row_kept_when_a_source_is_missing():
+    images, joint, enc, attr = _toy_study_tables()
+    keep = ~((images.brand == "B") & (images.source == "owned"))
+    images, joint = images[keep].reset_index(drop=True), joint[keep.to_numpy()]
+    scoring = ScoringSettings(templates=["{}"], bootstrap_samples=50)
+    tables, _ = A.attribute_tables(images, images.image_id.tolist(), joint, joint, [attr], scoring, enc)
+    b = tables["attribute_gaps"].set_index("brand").loc["B"]
+    assert b.owned_n == 0 and np.isnan(b.gap) and not bool(b.significant)
+
+
+def test_saved_check_threshold_and_probe_are_used_and_encoder_mismatch_ignored():
+    images, joint, enc, attr = _toy_study_tables()
+    ids = images.image_id.tolist()
+    scoring = ScoringSettings(templates=["{}"], bootstrap_samples=20)
+    vec = A.attribute_vectors(attr, ["{}"], enc.encode_texts)
+    saved = {"sunny": {"encoder_id": enc.id, "prompts_digest": A.prompts_digest(vec), "threshold": 0.9}}
+    tables, notes = A.attribute_tables(images, ids, joint, joint, [attr], scoring, enc, saved_checks=saved)
+    d = tables["attribute_definitions"].iloc[0]
+    assert d.threshold == 0.9 and d.threshold_from.startswith("check") and d.scored_by == "zero-shot"
+    long = tables["image_attributes"]
+    assert (long.positive == (long.probability >= 0.9)).all()
+
+    w = np.zeros(32)
+    w[0] = 50.0
+    saved["sunny"]["probe"] = {"coef": w.tolist(), "intercept": 0.0, "threshold": 0.6, "vectors": "cluster"}
+    tables, _ = A.attribute_tables(images, ids, joint, joint, [attr], scoring, enc, saved_checks=saved)
+    long = tables["image_attributes"]
+    np.testing.assert_allclose(long.probability, 1 / (1 + np.exp(-50.0 * joint[:, 0])), rtol=1e-5)
+    assert tables["attribute_definitions"].iloc[0].scored_by == "probe"
+
+    other = HashTextEncoder(id="another-encoder")
+    tables, notes = A.attribute_tables(images, ids, joint, joint, [attr], scoring, other, saved_checks=saved)
+    assert tables["attribute_definitions"].iloc[0].threshold == 0.5
+    assert len(notes) == 1 and "sunny" in notes[0] and "another-encoder" in notes[0]
+
+
+# --------------------------------------------------------------------------
+# Checking against labels
+
+
+def _labelled(n_pos, n_neg, signal, seed=0, dim=32):
+    enc = HashTextEncoder(dim=dim)
+    attr = Attribute("sunny", ["bright sunshine", "a clear sky"], ["grey overcast"])
+    vec = A.attribute_vectors(attr, ["{}"], enc.encode_texts)
+    rng = np.random.default_rng(seed)
+    y = np.r_[np.ones(n_pos, int), np.zeros(n_neg, int)]
+    direction = vec.positive - vec.negative
+    joint = _unit(rng.normal(scale=0.1, size=(len(y), dim)) + signal * (y[:, None] - 0.5) * direction)
+    return enc, attr, vec, y, joint
+
+
+def test_check_on_random_labels_is_flagged_not_better_than_chance():
+    enc, attr, vec, _, joint = _labelled(60, 60, signal=0.0, seed=4)
+    flagged = 0
+    for seed in range(5):
+        y = np.random.default_rng(100 + seed).permutation(np.r_[np.ones(60, int), np.zeros(60, int)])
+        result = A.check_attribute(attr, vec, y, joint, joint, enc, 0.5, "study", seed=seed)
+        # A balanced binary attribute scores AUC 0.5 / accuracy 50 % by chance (common practice).
+        assert abs(result.auc - 0.5) < 0.15
+        flagged += not result.better_than_chance
+        assert result.auc_low < result.auc < result.auc_high
+    # A 95 % interval contains 0.5 in about 95 % of random labellings; all 5 here (seeded).
+    assert flagged == 5
+    assert "NOT better than chance" in result.describe()
+
+
+def test_check_on_planted_labels_reports_everything_and_fits_a_probe():
+    from sklearn.metrics import roc_auc_score
+
+    enc, attr, vec, y, joint = _labelled(30, 40, signal=0.3, seed=1)
+    result = A.check_attribute(attr, vec, y, joint, joint, enc, 0.5, "study", seed=0)
+    p = A.pair_probabilities(joint, vec.positive, vec.negative, enc.logit_scale, enc.logit_bias)
+    assert result.enough and result.better_than_chance
+    assert result.auc == pytest.approx(roc_auc_score(y, p))  # reference: sklearn
+    assert result.accuracy == pytest.approx(np.mean((p >= 0.5) == y))
+    assert result.best_accuracy == pytest.approx(np.mean((p >= result.best_threshold) == y))
+    assert result.youden_j > 0.3
+    assert result.reliability["n"].sum() == len(y)
+    assert set(result.descriptions.description) == {"bright sunshine", "a clear sky", "grey overcast"}
+    assert result.descriptions.auc.is_monotonic_decreasing
+    assert np.isfinite(result.probe_auc) and result.probe_auc > 0.8
+    assert "probe" in result.record and len(result.record["probe"]["coef"]) == joint.shape[1]
+    text = result.describe()
+    assert "ROC AUC" in text and "Youden" in text and "linear probe" in text and "best single description" in text
+
+    record, said = A.saved_record(result, save_threshold=False, save_probe=True)
+    assert record["probe"]["vectors"] == "cluster" and "saved the linear probe" in said
+    record, said = A.saved_record(result, save_threshold=True, save_probe=False)
+    assert "probe" not in record and record["threshold"] == result.best_threshold
+
+
+def test_check_between_thresholds_skips_probe_and_warns_with_too_few():
+    enc, attr, vec, y, joint = _labelled(12, 15, signal=0.3)
+    result = A.check_attribute(attr, vec, y, joint, joint, enc, 0.5, "study")
+    assert result.enough and np.isnan(result.probe_auc) and "at least 20" in result.probe_note
+    record, said = A.saved_record(result, save_threshold=False, save_probe=True)
+    assert record is None and "nothing saved" in said
+
+    enc, attr, vec, y, joint = _labelled(4, 30, signal=0.3)
+    result = A.check_attribute(attr, vec, y, joint, joint, enc, 0.5, "study")
+    assert not result.enough and np.isnan(result.auc)
+    assert "WARNING: too few labels" in result.describe() and "ROC AUC" not in result.describe()
+
+
+def test_read_labels_matches_ids_relpaths_and_paths(tmp_path):
+    images = pd.DataFrame(
+        {
+            "image_id": ["id1", "id2", "id3", "id4"],
+            "path": [str(tmp_path / f"A/consumer/{i}.jpg") for i in range(4)],
+            "relpath": [f"A/consumer/{i}.jpg" for i in range(4)],
+            "status": ["ok", "ok", "ok", "unreadable"],
+        }
+    )
+    table = pd.DataFrame(
+        {
+            "image": ["id1", "A/consumer/1.jpg", str(tmp_path / "A/consumer/2.jpg"), "id4", "nope.jpg", "id1"],
+            "attribute": ["sunny"] * 6,
+            "label": [1, 0, 1, 1, 0, 1],
+        }
+    )
+    labels, warnings = A.read_labels(table, images, ["sunny"], where="labels.csv", base=tmp_path)
+    assert labels.image_id.tolist() == ["id1", "id2", "id3"] and labels.label.tolist() == [1, 0, 1]
+    assert len(warnings) == 2 and "row 5" in warnings[0] and "unreadable" in warnings[0] and "row 6" in warnings[1]
+
+    with pytest.raises(StudyError, match=r"labels.csv: row 2: attribute 'rainy' is not in the study"):
+        A.read_labels(table.assign(attribute=["rainy"] + ["sunny"] * 5), images, ["sunny"], "labels.csv")
+    with pytest.raises(StudyError, match=r"row 3: label '2' must be 0 or 1"):
+        A.read_labels(table.assign(label=[1, 2, 1, 1, 0, 1]), images, ["sunny"], "labels.csv")
+    with pytest.raises(StudyError, match=r"missing column\(s\) label"):
+        A.read_labels(table.drop(columns="label"), images, ["sunny"], "labels.csv")
+    with pytest.raises(StudyError, match=r"rows 2, 7: image 'id1' has both labels 0 and 1 for attribute 'sunny'"):
+        A.read_labels(table.assign(label=[1, 0, 1, 1, 0, 0]), images, ["sunny"], "labels.csv", base=tmp_path)
+
+
+# --------------------------------------------------------------------------
+# The one-line attribute syntax
+
+
+def test_parse_attribute_spec():
+    a = A.parse_attribute_spec("sunny: bright sunshine; a clear blue sky / grey overcast weather")
+    assert a == Attribute("sunny", ["bright sunshine", "a clear blue sky"], ["grey overcast weather"])
+
+
+@pytest.mark.parametrize(
+    "spec,message",
+    [
+        ("sunny bright / dull", "no colon"),
+        (": bright / dull", "empty name"),
+        ("sunny: bright sunshine", "'sunny': expected exactly one '/'"),
+        ("sunny: a / b / c", "'sunny': expected exactly one '/'"),
+        ("sunny:  / grey", "'sunny' has no positive description"),
+        ("sunny: bright / ", "'sunny' has no negative description"),
+        ("sunny: bright;; sunny / grey", "'sunny' has an empty positive description"),
+        ("sunny: bright {place} / grey", "'sunny': positive description 'bright {place}' contains a brace"),
+    ],
+)
+def test_parse_attribute_spec_refusals_name_the_attribute(spec, message):
+    with pytest.raises(StudyError, match=message.replace("(", r"\(").replace("{", r"\{").replace("}", r"\}")):
+        A.parse_attribute_spec(spec)
+
+
+def test_adding_a_duplicate_attribute_is_refused():
+    existing = [Attribute("sunny", ["bright"], ["dull"])]
+    with pytest.raises(StudyError, match="attribute 'sunny' is defined twice"):
+        A.add_attributes(existing, [A.parse_attribute_spec("sunny: warm / cold")], "command line")
