@@ -1,0 +1,630 @@
+"""Collect: find a study's images and describe every file in the images table.
+
+Two layouts are read.
+
+**Folder tree** ``ROOT/<brand>/<source>/...``: the first folder under the root
+names the brand, the second the source (``consumer`` or ``owned``, any case);
+deeper folders are allowed and ignored. A file anywhere else (directly under
+the root, directly under a brand folder, or under a source folder with another
+name) is listed with status ``misplaced``. Operating-system clutter
+(``.DS_Store``, ``Thumbs.db``, ``desktop.ini``, AppleDouble ``._*`` files) is
+not listed; every other file is.
+
+**Manifest** (a CSV file, UTF-8, header row required). Columns:
+
+=============  ========  ==========================================================
+column         required  meaning
+=============  ========  ==========================================================
+``path``       yes       image file, relative to the images root (or absolute,
+                         but then inside the root)
+``brand``      yes       brand name
+``source``     yes       ``consumer`` or ``owned`` (any case)
+``category``   no        the brand's category; when empty, the study's
+                         ``[brands]`` table decides, else ``all``
+``posted_at``  no        when the image was posted, kept as text
+=============  ========  ==========================================================
+
+Any other column is refused, naming the column, so a misspelt ``catgory`` is
+not silently ignored. A path that resolves (following symbolic links) outside
+the declared root is ``outside_root``; one that does not exist is ``missing``;
+a row with an empty path or brand, an unknown source, the wrong number of
+fields, or a path listed before is ``bad_row``.
+
+Every file that cannot be used keeps its row, with a ``status`` and a
+human-readable ``reason`` (see DEVELOPERS.md, "Images table"). One bad file
+never stops a run. Exact duplicates (same sha256 of the file bytes) are kept
+once: later copies get status ``duplicate`` and ``duplicate_of``. Visually
+near-identical images (a 64-bit difference hash within a small Hamming
+distance) are flagged in ``near_duplicate_of`` but still used.
+
+Decoding (``open_rgb``) reads JPEG (and MPO), PNG, WebP, GIF (first frame),
+BMP and TIFF, applies the EXIF orientation, and converts palette, CMYK, 16-bit
+and alpha images to 8-bit RGB.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import os
+import warnings
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from PIL import Image, ImageOps, UnidentifiedImageError
+
+from explore.study import StudyError
+
+#: Image formats we decode (PIL plugin names; the JPEG plugin also opens MPO,
+#: the multi-picture JPEG many phones write). Limiting PIL to these keeps
+#: rarely used decoders away.
+FORMATS = ("JPEG", "PNG", "WEBP", "GIF", "BMP", "TIFF")
+
+#: Largest image accepted, in pixels. This equals PIL's own decompression-bomb
+#: error level (2 x ``Image.MAX_IMAGE_PIXELS`` = 2 x 89,478,485 in Pillow's
+#: defaults), so a 108-megapixel phone photo passes and a crafted bomb does not.
+MAX_PIXELS = 178_956_970
+
+#: Near-duplicate threshold: difference hashes (64 bits) at most this many bits
+#: apart are called near-identical. Small values such as 4-5 of 64 bits are
+#: common practice for dHash (Krawetz, "Kind of Like That", 2013).
+NEAR_DUPLICATE_BITS = 4
+
+SOURCES = ("consumer", "owned")
+MANIFEST_REQUIRED = ("path", "brand", "source")
+MANIFEST_OPTIONAL = ("category", "posted_at")
+COLUMNS = [
+    "image_id",
+    "path",
+    "relpath",
+    "brand",
+    "category",
+    "source",
+    "posted_at",
+    "sha256",
+    "width",
+    "height",
+    "status",
+    "reason",
+    "duplicate_of",
+    "near_duplicate_of",
+]
+_CLUTTER = {".ds_store", "thumbs.db", "desktop.ini"}
+
+# collect_images applies MAX_PIXELS to every header itself, so PIL's warning
+# (issued at half that size) would only repeat what the table already says.
+warnings.filterwarnings("ignore", category=Image.DecompressionBombWarning)
+
+
+class CollectError(StudyError):
+    """The images source named by a study (root folder or manifest) cannot be read as a whole."""
+
+
+class ImageProblem(Exception):
+    """One file cannot be used; ``status`` is the skip kind, the message the reason."""
+
+    def __init__(self, status: str, reason: str):
+        super().__init__(reason)
+        self.status = status
+        self.reason = reason
+
+
+# --------------------------------------------------------------------------
+# Decoding
+
+
+def open_rgb(path: str | Path, draft_size: int | None = None, max_pixels: int = MAX_PIXELS) -> Image.Image:
+    """Decode one image file to an upright 8-bit RGB PIL image.
+
+    Parameters
+    ----------
+    path : the image file.
+    draft_size : when given, JPEGs are decoded at a reduced scale (1/2, 1/4 or
+        1/8, libjpeg's DCT scaling) chosen so both sides stay at least this
+        many pixels. Much cheaper than a full decode when the model input is
+        small. Other formats are decoded in full.
+    max_pixels : images larger than this are refused (decompression bombs).
+
+    Returns
+    -------
+    PIL.Image.Image in mode ``RGB``, EXIF orientation applied.
+
+    Raises
+    ------
+    ImageProblem with ``status`` one of ``empty``, ``unreadable``, ``not_image``,
+    ``too_large``, ``truncated``, ``corrupt``.
+    """
+    data = _read_bytes(Path(path))
+    image, _ = _decode(data, draft_size, max_pixels)
+    return image
+
+
+def _read_bytes(path: Path) -> bytes:
+    try:
+        with open(path, "rb") as f:
+            data = f.read()
+    except PermissionError:
+        raise ImageProblem("unreadable", "permission denied when reading the file") from None
+    except FileNotFoundError:
+        raise ImageProblem("missing", "the file no longer exists") from None
+    except IsADirectoryError:
+        raise ImageProblem("bad_row", "the path is a folder, not a file") from None
+    except OSError as exc:
+        raise ImageProblem("unreadable", f"cannot read the file: {exc.strerror or exc}") from None
+    if not data:
+        raise ImageProblem("empty", "the file is empty (0 bytes)")
+    return data
+
+
+def _decode(data: bytes, draft_size: int | None, max_pixels: int) -> tuple[Image.Image, tuple[int, int]]:
+    """Bytes -> (upright RGB image, upright full-resolution (width, height))."""
+    try:
+        image = Image.open(io.BytesIO(data), formats=FORMATS)
+    except UnidentifiedImageError:
+        raise ImageProblem(
+            "not_image", "not a JPEG, PNG, WebP, GIF, BMP or TIFF image that can be identified"
+        ) from None
+    except Image.DecompressionBombError as exc:
+        raise ImageProblem("too_large", f"refused as a decompression bomb: {exc}") from None
+    except Exception as exc:  # a broken header can raise almost anything inside PIL
+        raise ImageProblem("corrupt", f"the image header cannot be read: {exc}") from None
+    width, height = image.size
+    if width * height > max_pixels:
+        raise ImageProblem(
+            "too_large",
+            f"{width}x{height} = {width * height:,} pixels is over the limit of {max_pixels:,} "
+            "(decompression-bomb protection)",
+        )
+    try:
+        if draft_size and image.format in ("JPEG", "MPO"):
+            image.draft(None, (draft_size, draft_size))
+        image.load()
+    except Image.DecompressionBombError as exc:
+        raise ImageProblem("too_large", f"refused as a decompression bomb: {exc}") from None
+    except OSError as exc:
+        if "truncated" in str(exc).lower():
+            raise ImageProblem("truncated", f"the file is truncated: {exc}") from None
+        raise ImageProblem("corrupt", f"the image data cannot be decoded: {exc}") from None
+    except Exception as exc:
+        raise ImageProblem("corrupt", f"the image data cannot be decoded: {exc}") from None
+
+    try:
+        orientation = int(image.getexif().get(0x0112, 1) or 1)
+    except Exception:  # malformed EXIF: keep the image, ignore the tag
+        orientation = 1
+    try:
+        if orientation in (2, 3, 4, 5, 6, 7, 8):
+            image = ImageOps.exif_transpose(image)
+        rgb = to_rgb(image)
+    except Exception as exc:
+        raise ImageProblem("corrupt", f"the image cannot be converted to RGB: {exc}") from None
+    if orientation in (5, 6, 7, 8):  # these orientations swap the sides
+        width, height = height, width
+    return rgb, (width, height)
+
+
+def to_rgb(image: Image.Image) -> Image.Image:
+    """Convert any PIL mode to 8-bit RGB the way a viewer would show it.
+
+    - 16-bit and 32-bit integer greyscale (``I;16*``, ``I``) is scaled by
+      255/65535 (PIL's own ``convert("L")`` clips it instead, turning most
+      pixels white); float ``F`` images in [0, 1] are scaled by 255.
+    - Transparent images (alpha channel or palette transparency) are
+      composited over white.
+    - CMYK uses the embedded ICC profile when there is one (LittleCMS via
+      ``PIL.ImageCms``), else PIL's conversion.
+    """
+    mode = image.mode
+    if mode == "RGB":
+        return image
+    if mode.startswith("I") or mode == "F":
+        values = np.asarray(image, dtype=np.float64)
+        if mode == "F" and values.size and np.nanmax(values) <= 1.0:
+            values = values * 255.0
+        elif mode != "F":
+            values = np.clip(values, 0, 65535) * (255.0 / 65535.0)
+        grey = np.clip(np.rint(np.nan_to_num(values)), 0, 255).astype(np.uint8)
+        return Image.fromarray(grey, mode="L").convert("RGB")
+    if mode == "P":
+        if "transparency" in image.info:
+            return _over_white(image.convert("RGBA"))
+        return image.convert("RGB")
+    if mode in ("RGBA", "RGBa", "LA", "La", "PA"):
+        return _over_white(image.convert("RGBA"))
+    if mode == "CMYK":
+        icc = image.info.get("icc_profile")
+        if icc:
+            try:
+                from PIL import ImageCms
+
+                source = ImageCms.ImageCmsProfile(io.BytesIO(icc))
+                return ImageCms.profileToProfile(
+                    image, source, ImageCms.createProfile("sRGB"), outputMode="RGB"
+                )
+            except Exception:  # a broken profile: fall back to the plain formula
+                pass
+        return image.convert("RGB")
+    return image.convert("RGB")
+
+
+def _over_white(rgba: Image.Image) -> Image.Image:
+    background = Image.new("RGBA", rgba.size, (255, 255, 255, 255))
+    background.alpha_composite(rgba)
+    return background.convert("RGB")
+
+
+def difference_hash(image: Image.Image) -> int:
+    """64-bit difference hash (dHash): grey 9x8 thumbnail, bit = left pixel brighter than right.
+
+    Krawetz, "Kind of Like That" (2013). Robust to resizing and recompression,
+    so re-encoded or resized copies of one photo land a few bits apart.
+    """
+    grey = np.asarray(image.convert("L").resize((9, 8), Image.Resampling.BOX), dtype=np.int16)
+    bits = (grey[:, :-1] > grey[:, 1:]).ravel()
+    return int(np.packbits(bits).view(">u8")[0])
+
+
+# --------------------------------------------------------------------------
+# Finding files
+
+
+@dataclass
+class _Entry:
+    """One candidate row before its file is read."""
+
+    path: str
+    relpath: str
+    image_key: str  # what the image id is computed from
+    brand: str = ""
+    category: str = ""
+    source: str = ""
+    posted_at: str = ""
+    status: str = ""
+    reason: str = ""
+
+
+def _image_id(key: str) -> str:
+    return hashlib.sha1(key.encode("utf-8")).hexdigest()[:12]
+
+
+def _tree_entries(root: Path, categories: dict[str, str]) -> list[_Entry]:
+    entries = []
+    for folder, dirs, files in os.walk(root):
+        dirs.sort()
+        for name in sorted(files):
+            if name.lower() in _CLUTTER or name.startswith("._"):
+                continue
+            full = Path(folder) / name
+            rel = full.relative_to(root).as_posix()
+            parts = rel.split("/")
+            entry = _Entry(path=str(full), relpath=rel, image_key=rel)
+            if len(parts) < 3:
+                entry.status = "misplaced"
+                entry.reason = (
+                    "not inside ROOT/<brand>/<source>/ (expected a brand folder, then a "
+                    "'consumer' or 'owned' folder)"
+                )
+                if len(parts) == 2:
+                    entry.brand = parts[0]
+            else:
+                entry.brand = parts[0]
+                entry.category = categories.get(parts[0], "all")
+                source = parts[1].lower()
+                if source in SOURCES:
+                    entry.source = source
+                else:
+                    entry.status = "misplaced"
+                    entry.reason = (
+                        f"source folder '{parts[1]}' is neither 'consumer' nor 'owned'"
+                    )
+            entries.append(entry)
+    entries.sort(key=lambda e: e.relpath)
+    return entries
+
+
+def _manifest_entries(manifest: Path, root: Path, categories: dict[str, str]) -> list[_Entry]:
+    try:
+        text = manifest.read_text(encoding="utf-8-sig")
+    except FileNotFoundError:
+        raise
+    except UnicodeDecodeError as exc:
+        raise CollectError(f"{manifest}: the manifest is not UTF-8 text: {exc}") from None
+    except OSError as exc:
+        raise CollectError(f"{manifest}: cannot read the manifest: {exc}") from None
+    rows = list(csv.reader(io.StringIO(text)))
+    if not rows:
+        raise CollectError(f"{manifest}: the manifest is empty; it needs a header row with path, brand, source")
+    header = [h.strip().lower() for h in rows[0]]
+    missing = [c for c in MANIFEST_REQUIRED if c not in header]
+    if missing:
+        raise CollectError(
+            f"{manifest}: the manifest lacks column(s) {', '.join(missing)}; "
+            f"its header is: {', '.join(rows[0])}"
+        )
+    allowed = MANIFEST_REQUIRED + MANIFEST_OPTIONAL
+    unknown = [h for h in header if h not in allowed]
+    if unknown:
+        raise CollectError(
+            f"{manifest}: unknown column(s) {', '.join(unknown)}; "
+            f"expected path, brand, source and optionally category, posted_at"
+        )
+    doubled = sorted({h for h in header if header.count(h) > 1})
+    if doubled:
+        raise CollectError(f"{manifest}: column(s) {', '.join(doubled)} appear more than once")
+
+    real_root = root.resolve()
+    seen: dict[str, int] = {}
+    entries = []
+    for line_no, row in enumerate(rows[1:], start=2):
+        if not row or all(not cell.strip() for cell in row):
+            continue
+        where = f"manifest line {line_no}"
+        if len(row) != len(header):
+            raw = ",".join(row)
+            entries.append(
+                _Entry(
+                    path="",
+                    relpath=row[0].strip() if row else "",
+                    image_key=f"{raw}@{line_no}",
+                    status="bad_row",
+                    reason=f"{where} has {len(row)} fields; the header has {len(header)}",
+                )
+            )
+            continue
+        cells = {h: v.strip() for h, v in zip(header, row)}
+        written = cells["path"]
+        entry = _Entry(
+            path="",
+            relpath=written,
+            image_key=f"{written}@{line_no}",  # replaced by the resolved path once it is valid
+            brand=cells["brand"],
+            source=cells["source"].lower(),
+            posted_at=cells.get("posted_at", ""),
+        )
+        entry.category = cells.get("category", "") or categories.get(entry.brand, "all")
+        entries.append(entry)
+        problems = []
+        if not written:
+            problems.append("the path is empty")
+        if not entry.brand:
+            problems.append("the brand is empty")
+        if entry.source not in SOURCES:
+            problems.append(f"source '{cells['source']}' is neither 'consumer' nor 'owned'")
+        if problems:
+            entry.status, entry.reason = "bad_row", f"{where}: " + "; ".join(problems)
+            continue
+        candidate = Path(written).expanduser()
+        if not candidate.is_absolute():
+            candidate = root / candidate
+        resolved = candidate.resolve()
+        entry.path = str(resolved)
+        if not resolved.is_relative_to(real_root):
+            entry.status = "outside_root"
+            entry.reason = (
+                f"{where}: path '{written}' leads outside the images root {real_root}; refused"
+            )
+            continue
+        key = resolved.relative_to(real_root).as_posix()
+        entry.image_key = key
+        if key in seen:
+            entry.status = "bad_row"
+            entry.reason = f"{where}: '{written}' is already listed on line {seen[key]}"
+            entry.image_key = f"{key}@{line_no}"
+            continue
+        seen[key] = line_no
+        if not resolved.exists():
+            entry.status, entry.reason = "missing", f"{where}: '{written}' does not exist"
+        elif resolved.is_dir():
+            entry.status, entry.reason = "bad_row", f"{where}: '{written}' is a folder, not a file"
+    return entries
+
+
+# --------------------------------------------------------------------------
+# The images table
+
+
+def collect_images(
+    root: str | Path | None = None,
+    manifest: str | Path | None = None,
+    categories: dict[str, str] | None = None,
+    progress: bool = True,
+    max_pixels: int = MAX_PIXELS,
+    near_duplicate_bits: int = NEAR_DUPLICATE_BITS,
+    workers: int | None = None,
+) -> pd.DataFrame:
+    """Find the images and build the images table (one row per file found).
+
+    Parameters
+    ----------
+    root : the folder tree ``ROOT/<brand>/<source>/...``; with a manifest, the
+        folder its paths are relative to and may not leave (default: the
+        manifest's folder).
+    manifest : optional CSV file (columns in the module docstring).
+    categories : brand -> category (a study's ``[brands]`` table); brands not
+        in it get ``all``.
+    progress : show a progress bar (count, rate, time left) while reading.
+    max_pixels : larger images are refused as ``too_large``.
+    near_duplicate_bits : Hamming distance (of 64 bits) up to which two
+        difference hashes count as near-identical.
+    workers : threads reading and hashing files (default: the CPUs available).
+
+    Returns
+    -------
+    pandas.DataFrame with the columns of DEVELOPERS.md "Images table".
+    """
+    categories = dict(categories or {})
+    if manifest is not None:
+        manifest = Path(manifest)
+        if not manifest.is_file():
+            raise FileNotFoundError(f"{manifest}: manifest file not found")
+        root = Path(root) if root is not None else manifest.parent
+        if not root.is_dir():
+            raise CollectError(f"{root}: the images root given for manifest {manifest} is not a folder")
+        entries = _manifest_entries(manifest, root.absolute(), categories)
+    elif root is not None:
+        root = Path(root)
+        if not root.exists():
+            raise FileNotFoundError(f"{root}: images folder not found")
+        if not root.is_dir():
+            raise CollectError(f"{root}: expected a folder ROOT/<brand>/<source>/... of images")
+        entries = _tree_entries(root.absolute(), categories)
+    else:
+        raise CollectError("collect needs an images root folder or a manifest CSV")
+
+    todo = [e for e in entries if not e.status]
+    results = _read_all(todo, progress, max_pixels, workers)
+    hashes: dict[int, int] = {}
+    rows = []
+    by_entry = dict(zip(map(id, todo), results))
+    for entry in entries:
+        row = {
+            "image_id": _image_id(entry.image_key),
+            "path": entry.path,
+            "relpath": entry.relpath,
+            "brand": entry.brand,
+            "category": entry.category,
+            "source": entry.source,
+            "posted_at": entry.posted_at,
+            "sha256": "",
+            "width": 0,
+            "height": 0,
+            "status": entry.status,
+            "reason": entry.reason,
+            "duplicate_of": "",
+            "near_duplicate_of": "",
+        }
+        result = by_entry.get(id(entry))
+        if result is not None:
+            if isinstance(result, ImageProblem):
+                row["status"], row["reason"] = result.status, result.reason
+            else:
+                sha, (w, h), dhash = result
+                row.update(sha256=sha, width=w, height=h, status="ok")
+                hashes[len(rows)] = dhash
+        rows.append(row)
+
+    table = pd.DataFrame(rows, columns=COLUMNS)
+    table["width"] = table["width"].astype("int64")
+    table["height"] = table["height"].astype("int64")
+    _flag_duplicates(table)
+    _flag_near_duplicates(table, hashes, near_duplicate_bits)
+    return table
+
+
+def _read_one(entry: _Entry, max_pixels: int):
+    """-> (sha256, (width, height), dhash) or an ImageProblem; never raises."""
+    try:
+        data = _read_bytes(Path(entry.path))
+        sha = hashlib.sha256(data).hexdigest()
+        # An eighth-scale JPEG decode is enough for the hash and still reads
+        # (and so checks) the whole compressed stream.
+        image, size = _decode(data, 64, max_pixels)
+        return sha, size, difference_hash(image)
+    except ImageProblem as problem:
+        return problem
+    except Exception as exc:  # one bad file never stops a run
+        return ImageProblem("corrupt", f"unexpected error while reading: {type(exc).__name__}: {exc}")
+
+
+def _read_all(entries: list[_Entry], progress: bool, max_pixels: int, workers: int | None) -> list:
+    from tqdm.auto import tqdm
+
+    if not entries:
+        return []
+    workers = workers or _cpu_count()
+    with ThreadPoolExecutor(max_workers=workers) as pool, tqdm(
+        total=len(entries), desc="collect", unit="file", disable=not progress
+    ) as bar:
+        results = []
+        for result in pool.map(lambda e: _read_one(e, max_pixels), entries):
+            results.append(result)
+            bar.update(1)
+    return results
+
+
+def _cpu_count() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def _flag_duplicates(table: pd.DataFrame) -> None:
+    first: dict[str, str] = {}
+    first_path: dict[str, str] = {}
+    for i in np.flatnonzero(table["status"].to_numpy() == "ok"):
+        sha = table.at[i, "sha256"]
+        if sha in first:
+            table.at[i, "status"] = "duplicate"
+            table.at[i, "duplicate_of"] = first[sha]
+            table.at[i, "reason"] = f"same content as {first_path[sha]} (kept once)"
+        else:
+            first[sha] = table.at[i, "image_id"]
+            first_path[sha] = table.at[i, "relpath"]
+
+
+def _flag_near_duplicates(table: pd.DataFrame, hashes: dict[int, int], max_bits: int) -> None:
+    """Point each used image at the first earlier used image within ``max_bits`` of its dHash."""
+    rows = [i for i in np.flatnonzero(table["status"].to_numpy() == "ok") if i in hashes]
+    if len(rows) < 2 or max_bits < 0:
+        return
+    values = np.array([hashes[i] for i in rows], dtype=np.uint64)
+    ids = table["image_id"].to_numpy()
+    block = 1024
+    for start in range(1, len(rows), block):
+        stop = min(start + block, len(rows))
+        # distances of rows start..stop-1 to every row before stop
+        dist = _popcount(values[start:stop, None] ^ values[None, :stop])
+        earlier = np.arange(stop)[None, :] < np.arange(start, stop)[:, None]
+        close = (dist <= max_bits) & earlier
+        for k in np.flatnonzero(close.any(axis=1)):
+            j = int(np.argmax(close[k]))
+            table.at[rows[start + k], "near_duplicate_of"] = ids[rows[j]]
+
+
+_BYTE_BITS = np.array([bin(b).count("1") for b in range(256)], dtype=np.uint8)
+
+
+def _popcount(x: np.ndarray) -> np.ndarray:
+    """Set bits per uint64 element (numpy >= 2 has it built in)."""
+    if hasattr(np, "bitwise_count"):
+        return np.bitwise_count(x)
+    return _BYTE_BITS[x.view(np.uint8).reshape(x.shape + (8,))].sum(axis=-1)
+
+
+def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
+    """The images table of a study: its ``[images]`` root/manifest and ``[brands]`` categories."""
+    return collect_images(
+        root=study.images.root,
+        manifest=study.images.manifest,
+        categories=study.brands,
+        progress=progress,
+    )
+
+
+def skipped_files(table: pd.DataFrame) -> pd.DataFrame:
+    """Rows whose status is not ``ok`` (duplicates included), in table order."""
+    return table[table["status"] != "ok"].reset_index(drop=True)
+
+
+def summarise(table: pd.DataFrame, examples: int = 5) -> str:
+    """A short printable summary: files found, used, skipped by kind, duplicates, examples."""
+    n = len(table)
+    used = int((table["status"] == "ok").sum())
+    lines = [f"found {n} file{'s' if n != 1 else ''}: {used} used, {n - used} skipped"]
+    counts = table.loc[table["status"] != "ok", "status"].value_counts()
+    if len(counts):
+        lines[0] += " (" + ", ".join(f"{count} {kind}" for kind, count in counts.items()) + ")"
+    near = int((table["near_duplicate_of"] != "").sum())
+    if near:
+        lines.append(f"{near} near-duplicate image{'s' if near != 1 else ''} flagged (still used)")
+    problems = table[~table["status"].isin(["ok", "duplicate"])]
+    for _, row in problems.head(examples).iterrows():
+        lines.append(f"  {row['status']}: {row['relpath'] or row['path']}: {row['reason']}")
+    if len(problems) > examples:
+        lines.append(f"  ... and {len(problems) - examples} more (see the skipped table)")
+    return "\n".join(lines)
