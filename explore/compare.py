@@ -35,6 +35,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from explore.study import StudyError
+
 #: The three brand metrics compared with each other, in a fixed order.
 METRICS = ("consumer_share", "owned_share", "survey_score")
 #: The brand-map sources, in a fixed order (the first is the alignment target).
@@ -48,8 +50,12 @@ SURVEY_REQUIRED = ("brand", "attribute", "score")
 SURVEY_OPTIONAL = ("category", "sample_size")
 
 
-class SurveyError(ValueError):
-    """The survey CSV is not valid; the message names the file, row and column."""
+class SurveyError(StudyError):
+    """The survey CSV is not valid; the message names the file, row and column.
+
+    A survey is part of a study's input, so this is a kind of ``StudyError``
+    (the command line prints it as such, without a traceback).
+    """
 
 
 # --------------------------------------------------------------------------
@@ -938,9 +944,9 @@ def summarise(tables: dict[str, pd.DataFrame], *, top: int = 2) -> list[str]:
             if per["concordant_share"].nunique() == 1:
                 lines.append(f"{words}: the same for every attribute, {fmt(per.iloc[0]).split(' ', 1)[1]}")
                 continue
-            k = max(1, min(top, len(per) // 2))
-            best = [fmt(r) for r in per.head(k).itertuples()]
-            worst = [fmt(r) for r in per.iloc[::-1].head(k).itertuples()]
+            hi, lo = per["concordant_share"].max(), per["concordant_share"].min()
+            best = [fmt(r) for r in per[per["concordant_share"] > lo].head(top).itertuples()]
+            worst = [fmt(r) for r in per[per["concordant_share"] < hi].iloc[::-1].head(top).itertuples()]
             lines.append(f"{words}: best {', '.join(best)}; worst {', '.join(worst)}")
     disp = tables.get("brand_displacement")
     if disp is not None and len(disp):

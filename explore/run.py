@@ -88,6 +88,11 @@ def run_study(
     summary = RunSummary(study=study.name, output=out)
     timer = _StageTimer(summary)
 
+    # compare: read the survey first, so a bad survey file fails before the slow stages.
+    from explore import compare
+
+    survey = compare.read_survey(study.survey.file) if study.survey.file else None
+
     with timer("collect"):
         images = collect.collect_study_images(study)
         summary.images_found = len(images)
@@ -121,6 +126,22 @@ def run_study(
 
     # Later stages are added here, in data-flow order (attributes, contexts,
     # compare, report). Each writes its tables with write_tables(out, ...).
+
+    # --- compare (explore/compare.py): survey agreement, brand maps ---------
+    # Needs this run's attribute_shares table; read back from the output folder
+    # so this block does not depend on the attributes block's variable names.
+    if "attribute_shares" in summary.tables:
+        with timer("compare"):
+            compare_tables, compare_notes = compare.compare_study(
+                pd.read_parquet(out / "attribute_shares.parquet"),
+                survey=survey,
+                brand_categories={b: study.category_of(b) for b in study.brands},
+                images=images,
+                embeddings=embeddings,
+            )
+            summary.tables += write_tables(out, compare_tables)
+            summary.notes += [f"compare: {note}" for note in compare_notes]
+    # --- end compare ----------------------------------------------------------
 
     record = {
         "study": study.name,
