@@ -1,0 +1,200 @@
+"""Embed: every usable image of the images table becomes vectors of one encoder.
+
+The work per batch is a pure function (decode, preprocess, encode), so it could
+be mapped over shards elsewhere; here it runs on the local CPU:
+
+- only images whose content hash is not yet in the cache are embedded, each
+  distinct content once;
+- decoding runs in a small thread pool a few batches ahead of the model
+  (PIL's decoders and resizers, and torch, release the GIL), so the model
+  rarely waits for images;
+- large JPEGs are decoded at reduced size (libjpeg DCT scaling) to about twice
+  the encoder's input side, which is most of the decoding cost saved;
+- the model runs batched under ``torch.inference_mode()`` with one torch
+  thread per available CPU;
+- each finished batch is written to the cache at once, so an interruption
+  loses at most the batch in flight.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from collections import deque
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from explore.cache import EmbeddingCache
+
+
+class EmbedError(RuntimeError):
+    """Embedding cannot go on (a file changed since it was collected, or the encoder misbehaves)."""
+
+
+@dataclass
+class Embeddings:
+    """Vectors aligned with the usable rows (``status == "ok"``) of the images table.
+
+    ``cluster`` (n x d_c) and ``joint`` (n x d_j) are float32 and L2-normalised;
+    row i of both belongs to ``image_ids[i]``.
+    """
+
+    image_ids: list[str]
+    encoder_id: str
+    cluster: np.ndarray
+    joint: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.image_ids)
+
+
+@dataclass
+class EmbedStats:
+    """What one ``embed_table`` call did."""
+
+    embedded: int = 0  # distinct images run through the encoder now
+    reused: int = 0  # distinct images whose vectors came from the cache
+    duplicates: int = 0  # usable rows sharing content with another row (embedded once)
+    seconds: float = 0.0  # time spent embedding new images
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def rate(self) -> float:
+        return self.embedded / self.seconds if self.seconds > 0 else 0.0
+
+    def describe(self) -> str:
+        """One line, e.g. ``embedded 120 new images, reused 380 from cache``."""
+        text = f"embedded {self.embedded} new image{'s' if self.embedded != 1 else ''}, reused {self.reused} from cache"
+        if self.embedded and self.seconds > 0:
+            text += f" ({self.rate:.1f} images/s)"
+        if self.duplicates:
+            text += f"; {self.duplicates} duplicate row{'s' if self.duplicates != 1 else ''} share vectors"
+        return text
+
+
+def embed_table(
+    table,
+    encoder,
+    cache_dir,
+    batch_size: int = 32,
+    progress: bool = True,
+    decode_workers: int | None = None,
+) -> tuple[Embeddings, EmbedStats]:
+    """Vectors for every usable image of ``table``, embedding only what the cache lacks.
+
+    Parameters
+    ----------
+    table : the images table (``collect.collect_images``); rows with status
+        ``ok`` are embedded.
+    encoder : an ``explore.encoders.base.Encoder``.
+    cache_dir : the cache folder (``EmbeddingCache``); held locked during the call.
+    batch_size : images per model call and per cache shard.
+    progress : show a progress bar (count, rate, time left).
+    decode_workers : decoding threads (default: 2, or 1 on a one-CPU machine).
+
+    Returns
+    -------
+    (Embeddings, EmbedStats)
+
+    Raises
+    ------
+    CacheBusy when another run holds the cache; EmbedError when an image can no
+    longer be decoded or the encoder returns malformed vectors.
+    """
+    if batch_size < 1:
+        raise ValueError(f"batch_size must be at least 1, got {batch_size}")
+    usable = table[table["status"] == "ok"]
+    image_ids = usable["image_id"].astype(str).tolist()
+    shas = usable["sha256"].astype(str).tolist()
+    paths = usable["path"].astype(str).tolist()
+    if any(not s for s in shas):
+        raise EmbedError("the images table has usable rows without a sha256; run collect again")
+    if len(set(image_ids)) != len(image_ids):
+        raise EmbedError("the images table has repeated image_id values among usable rows")
+    stats = EmbedStats(duplicates=len(shas) - len(set(shas)))
+
+    with EmbeddingCache(cache_dir, encoder.id) as cache:
+        stats.notes += cache.notes
+        todo = cache.missing(shas)
+        stats.reused = len(set(shas)) - len(todo)
+        if todo:
+            path_of = {}
+            for sha, path in zip(shas, paths):
+                path_of.setdefault(sha, path)
+            start = time.perf_counter()
+            try:
+                _embed_into(cache, [(s, path_of[s]) for s in todo], encoder, batch_size, progress, decode_workers)
+            finally:
+                stats.embedded = len(todo) - len(cache.missing(todo))
+                stats.seconds = time.perf_counter() - start
+                cache.compact()
+        cluster, joint = cache.get(shas)
+    return Embeddings(image_ids=image_ids, encoder_id=encoder.id, cluster=cluster, joint=joint), stats
+
+
+def available_cpus() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, decode_workers) -> None:
+    """Decode ahead in threads, encode batch by batch, write each batch to the cache."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    import torch
+    from tqdm.auto import tqdm
+
+    from explore.collect import ImageProblem, open_rgb
+
+    cpus = available_cpus()
+    workers = decode_workers or min(2, cpus)
+    draft = 2 * int(encoder.input_size)
+
+    def load(path: str):
+        try:
+            return encoder.preprocess(open_rgb(path, draft_size=draft))
+        except ImageProblem as problem:
+            raise EmbedError(
+                f"{path}: {problem.reason} (it was readable when collected; run again to re-collect)"
+            ) from None
+
+    batches = [todo[i : i + batch_size] for i in range(0, len(todo), batch_size)]
+    ahead = 2  # batches decoded ahead of the model
+    threads_before = torch.get_num_threads()
+    torch.set_num_threads(cpus)
+    pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="explore-decode")
+    pending: deque = deque()
+    try:
+        with tqdm(total=len(todo), desc="embed", unit="img", disable=not progress) as bar, torch.inference_mode():
+            for batch in batches[:ahead]:
+                pending.append([pool.submit(load, path) for _, path in batch])
+            for k, batch in enumerate(batches):
+                futures = pending.popleft()
+                if k + ahead < len(batches):
+                    pending.append([pool.submit(load, path) for _, path in batches[k + ahead]])
+                tensors = [f.result() for f in futures]
+                out = encoder.encode_images(torch.stack(tensors))
+                cluster = _check(out, "cluster", len(batch), encoder.id)
+                joint = _check(out, "joint", len(batch), encoder.id)
+                cache.put([sha for sha, _ in batch], cluster, joint)
+                bar.update(len(batch))
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+        torch.set_num_threads(threads_before)
+
+
+def _check(out: dict, key: str, n: int, encoder_id: str) -> np.ndarray:
+    if key not in out:
+        raise EmbedError(f"encoder {encoder_id} returned no '{key}' vectors")
+    vectors = np.asarray(out[key], dtype=np.float32)
+    if vectors.ndim != 2 or len(vectors) != n:
+        raise EmbedError(f"encoder {encoder_id} returned '{key}' of shape {vectors.shape} for {n} images")
+    if not np.isfinite(vectors).all():
+        raise EmbedError(f"encoder {encoder_id} returned non-finite '{key}' vectors")
+    norms = np.linalg.norm(vectors, axis=1)
+    if np.abs(norms - 1.0).max() > 1e-3:
+        raise EmbedError(f"encoder {encoder_id} returned '{key}' vectors that are not L2-normalised")
+    return vectors
