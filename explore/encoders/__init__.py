@@ -65,6 +65,8 @@ def load_encoder(
 
     # auto
     found = clip_mod.find_local_weights(model, pretrained, weights=weights)
+    if found.error:  # e.g. a named weights file that does not exist: never fall back silently
+        raise EncoderUnavailable(clip_mod.unavailable_message(model, pretrained, found, found.error))
     if found.path is not None:
         encoder = clip_mod.ClipEncoder(model, pretrained, weights=weights)
         return encoder, f"encoder: auto chose clip ({model}, weights found at {found.path})"

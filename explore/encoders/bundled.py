@@ -133,6 +133,37 @@ def conse(probabilities: np.ndarray, label_embeddings: np.ndarray, top_t: int = 
     return vectors.astype(np.float32)
 
 
+def label_cache_dir() -> Path:
+    """Where the label embeddings are kept between runs: ``EXPLORE_MODEL_CACHE``,
+    else ``$XDG_CACHE_HOME/explore``, else ``~/.cache/explore``."""
+    if os.environ.get("EXPLORE_MODEL_CACHE"):
+        return Path(os.environ["EXPLORE_MODEL_CACHE"]).expanduser()
+    xdg = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(xdg) / "explore"
+
+
+def _read_vectors(path: Path, shape: tuple[int, int]) -> np.ndarray | None:
+    try:
+        vectors = np.load(path, allow_pickle=False)
+    except (OSError, ValueError):
+        return None
+    if vectors.shape != shape or vectors.dtype != np.float32 or not np.isfinite(vectors).all():
+        return None
+    return vectors
+
+
+def _write_vectors(path: Path, vectors: np.ndarray) -> None:
+    """Atomic write (temp file + rename); a failure only costs recomputation next time."""
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+        with open(tmp, "wb") as fh:
+            np.save(fh, vectors, allow_pickle=False)
+        os.replace(tmp, path)
+    except OSError:
+        pass
+
+
 # One copy of the loaded models and of the 1000 label embeddings per process,
 # shared by every BundledEncoder with the same settings.
 _MODELS: dict = {}
@@ -170,6 +201,12 @@ def _load_text_model():
     if "text" not in _MODELS:
         from sentence_transformers import SentenceTransformer
 
+        try:  # the per-tensor "Loading weights" bar is noise for a local folder
+            from transformers.utils import logging as hf_logging
+
+            hf_logging.disable_progress_bar()
+        except ImportError:
+            pass
         _MODELS["text"] = SentenceTransformer(str(text_model_dir()), device="cpu", local_files_only=True)
     return _MODELS["text"]
 
@@ -201,6 +238,7 @@ class BundledEncoder:
             p = text_dir / name
             if p.is_file():
                 weights_digest.update(name.encode() + file_digest(p).encode())
+        self._weights_digest = weights_digest.hexdigest()
         template_digest = hashlib.sha256(label_template.encode()).hexdigest()[:6]
         self.id = (
             f"bundled-v{BUNDLED_VERSION}-{IMAGE_ARCH}-minilm-l6-v2-"
@@ -215,6 +253,8 @@ class BundledEncoder:
         self._data_config = resolve_data_config({}, model=self.model)
         self._transform = create_transform(**self._data_config)
         self.input_size = int(self._data_config["input_size"][-1])
+        dim = getattr(self.text_model, "get_embedding_dimension", None) or self.text_model.get_sentence_embedding_dimension
+        self.text_dim = int(dim())
         self.class_names = imagenet_class_names()
         self.model_name = f"{IMAGE_ARCH} (ImageNet) + {TEXT_MODEL}, ConSE T={self.top_t}"
 
@@ -239,7 +279,7 @@ class BundledEncoder:
 
         texts = list(texts)
         if not texts:
-            return np.zeros((0, self.text_model.get_sentence_embedding_dimension()), dtype=np.float32)
+            return np.zeros((0, self.text_dim), dtype=np.float32)
         with torch.inference_mode():
             vectors = self.text_model.encode(
                 texts, batch_size=64, convert_to_numpy=True, normalize_embeddings=True, show_progress_bar=False
@@ -266,10 +306,22 @@ class BundledEncoder:
         return [self.label_template.format(name=name) for name in self.class_names]
 
     def label_embeddings(self) -> np.ndarray:
-        """(1000, 384) embeddings of the class phrases; computed once per process."""
-        key = (str(self.text_model_dir), self.label_template)
+        """(1000, 384) embeddings of the class phrases.
+
+        Computed once per process and kept on disk (see ``label_cache_dir``), so
+        that later runs skip the ~1000 sentence encodings.
+        """
+        phrases = self.label_phrases()
+        key = hashlib.sha256(
+            "\n".join([self._weights_digest, str(BUNDLED_VERSION), *phrases]).encode()
+        ).hexdigest()[:16]
         if key not in _LABEL_EMBEDDINGS:
-            _LABEL_EMBEDDINGS[key] = self.encode_texts(self.label_phrases())
+            path = label_cache_dir() / f"bundled-label-embeddings-{key}.npy"
+            vectors = _read_vectors(path, (len(phrases), self.text_dim))
+            if vectors is None:
+                vectors = self.encode_texts(phrases)
+                _write_vectors(path, vectors)
+            _LABEL_EMBEDDINGS[key] = vectors
         return _LABEL_EMBEDDINGS[key]
 
     def _forward(self, batch: "torch.Tensor") -> tuple[np.ndarray, np.ndarray]:

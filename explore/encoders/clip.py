@@ -270,12 +270,14 @@ def find_local_weights(model: str, pretrained: str | None, weights: str | Path |
 
 def _reachable(url_or_host: str, timeout: float = PROBE_TIMEOUT) -> bool:
     """Can a TCP connection to the host be opened within ``timeout`` seconds (DNS included)?"""
-    host = urlparse(url_or_host).hostname or url_or_host
+    parsed = urlparse(url_or_host)
+    host = parsed.hostname or url_or_host
+    port = parsed.port or (80 if parsed.scheme == "http" else 443)
     result = {"ok": False}
 
     def probe():
         try:
-            with socket.create_connection((host, 443), timeout=timeout):
+            with socket.create_connection((host, port), timeout=timeout):
                 result["ok"] = True
         except OSError:
             pass
@@ -345,7 +347,8 @@ class ClipEncoder:
                 raise EncoderUnavailable(
                     unavailable_message(model, pretrained, lookup, "not found locally and HF_HUB_OFFLINE is set")
                 )
-            host = "huggingface.co" if lookup.cfg.get("hf_hub") else (lookup.cfg.get("url") or "huggingface.co")
+            hub = os.environ.get("HF_ENDPOINT") or "https://huggingface.co"  # as huggingface_hub
+            host = hub if lookup.cfg.get("hf_hub") else (lookup.cfg.get("url") or hub)
             if not allow_download or not _reachable(host):
                 raise EncoderUnavailable(
                     unavailable_message(

