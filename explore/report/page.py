@@ -1,0 +1,729 @@
+"""Assemble the report page: section data, bokeh figures, embedded data, HTML.
+
+The page is one file. Bokeh's JavaScript is inlined (``bokeh.resources.INLINE``),
+thumbnails are base64 JPEGs inside one JSON block, and every table offered for
+download is embedded as JSON too, so opening the file makes no request of any
+kind.
+
+Escaping: the HTML is rendered by Jinja2 with autoescaping on, so every text
+from the output folder (file, folder, brand, attribute, context and survey
+texts) is HTML-escaped where it appears. Data for the page's script sits in
+``<script type="application/json">`` blocks with ``<``, ``>`` and ``&`` written
+as ``\\u003c``, ``\\u003e`` and ``\\u0026``, so no text can close the block;
+the script reads it with ``JSON.parse`` and writes texts into the page with
+``textContent`` only.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from datetime import datetime, timezone
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from explore.report import colours, figures
+from explore.report.data import OutputFolder
+from explore.report.thumbnails import ThumbnailChoice, choose_thumbnail_ids, thumbnails_for
+
+#: Per-image tables: too large to embed as they are; the page offers the plotted
+#: images (ids, brand, source, context, map position, attribute probabilities) instead.
+PER_IMAGE_TABLES = ("images", "image_attributes", "image_contexts")
+#: Most rows of a table written into the HTML itself (the CSV download has all).
+MAX_HTML_ROWS = 300
+#: Most thumbnails the gallery under the map draws at once.
+GALLERY_LIMIT = 240
+
+
+# --------------------------------------------------------------------------
+# JSON that is safe inside <script>
+
+
+def script_json(value) -> str:
+    """JSON text that can sit inside ``<script type="application/json">``.
+
+    ``<``, ``>`` and ``&`` (and the JavaScript line separators U+2028/2029) are
+    written as unicode escapes; JSON.parse reads them back unchanged.
+    """
+    text = json.dumps(value, ensure_ascii=False, separators=(",", ":"), allow_nan=False, default=_json_default)
+    return (
+        text.replace("<", "\\u003c")
+        .replace(">", "\\u003e")
+        .replace("&", "\\u0026")
+        .replace("\u2028", "\\u2028")
+        .replace("\u2029", "\\u2029")
+    )
+
+
+def _json_default(value):
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, (np.floating,)):
+        v = float(value)
+        return v if math.isfinite(v) else None
+    if isinstance(value, np.bool_):
+        return bool(value)
+    if isinstance(value, (np.ndarray, list, tuple)):
+        return [_clean(v) for v in value]
+    if isinstance(value, (pd.Timestamp, datetime)):
+        return value.isoformat()
+    return str(value)
+
+
+def _clean(v):
+    """A scalar ready for JSON (NaN -> None, numpy -> Python)."""
+    if v is None:
+        return None
+    if isinstance(v, (float, np.floating)):
+        v = float(v)
+        return v if math.isfinite(v) else None
+    if isinstance(v, np.integer):
+        return int(v)
+    if isinstance(v, np.bool_):
+        return bool(v)
+    if isinstance(v, (str, bool, int)):
+        return v
+    if isinstance(v, (list, tuple, np.ndarray)):
+        return [_clean(x) for x in v]
+    try:
+        if pd.isna(v):
+            return None
+    except (TypeError, ValueError):
+        pass
+    return str(v)
+
+
+def table_json(table: pd.DataFrame) -> dict:
+    """A table as {"columns": [...], "rows": [[...], ...]} for the page's CSV download."""
+    return {
+        "columns": [str(c) for c in table.columns],
+        "rows": [[_clean(v) for v in row] for row in table.itertuples(index=False, name=None)],
+    }
+
+
+# --------------------------------------------------------------------------
+# Formatting helpers for the template
+
+
+def fmt_number(v, digits: int = 3) -> str:
+    """Readable text for a table cell (numbers rounded, NaN as an en dash)."""
+    if v is None:
+        return "–"
+    if isinstance(v, (bool, np.bool_)):
+        return "yes" if v else "no"
+    if isinstance(v, (int, np.integer)):
+        return f"{int(v):,}"
+    if isinstance(v, (float, np.floating)):
+        v = float(v)
+        if not math.isfinite(v):
+            return "–"
+        if v == int(v) and abs(v) < 1e15:
+            return f"{int(v):,}"
+        return f"{v:.{digits}g}" if abs(v) < 1e-3 or abs(v) >= 1e4 else f"{v:,.{digits}f}".rstrip("0").rstrip(".")
+    try:
+        if pd.isna(v):
+            return "–"
+    except (TypeError, ValueError):
+        pass
+    return str(v)
+
+
+def html_table(table: pd.DataFrame, columns: list[str] | None = None, limit: int = MAX_HTML_ROWS) -> dict:
+    """Rows of formatted cells for the template (escaped there), at most ``limit`` rows."""
+    cols = [c for c in (columns or list(table.columns)) if c in table.columns]
+    rows = [[fmt_number(v) for v in row] for row in table[cols].head(limit).itertuples(index=False, name=None)]
+    numeric = [pd.api.types.is_numeric_dtype(table[c]) and not pd.api.types.is_bool_dtype(table[c]) for c in cols]
+    return {"columns": cols, "rows": rows, "numeric": numeric, "total": len(table), "shown": len(rows)}
+
+
+def encoder_quality(encoder_id: str) -> dict:
+    """What the encoder id means for the quality of the numbers."""
+    eid = (encoder_id or "").lower()
+    if eid.startswith("bundled"):
+        return {
+            "level": "lower",
+            "label": "Bundled encoder: lower fidelity than a CLIP model",
+            "text": (
+                "Photos were read by a small ImageNet classifier (EfficientNet-Lite0) and attributes were "
+                "scored through the names of the 1,000 object classes it knows (ConSE zero-shot, with the "
+                "MiniLM sentence encoder). It runs anywhere without downloads, but it sees objects rather than "
+                "mood or style, so attribute scores and context names are coarse. Treat the numbers as a first "
+                "look and rerun the study with a CLIP encoder before quoting them."
+            ),
+        }
+    if eid.startswith("clip") or "clip" in eid:
+        return {
+            "level": "standard",
+            "label": "CLIP encoder",
+            "text": (
+                "Photos and attribute prompts were embedded in one shared space by an open_clip model trained "
+                "on image and text pairs, the higher-fidelity option of explore. Scores are still zero-shot "
+                "estimates, not hand labels."
+            ),
+        }
+    return {
+        "level": "unknown",
+        "label": "Encoder not recorded" if not eid else "Unrecognised encoder",
+        "text": "The run did not record a known encoder, so the quality of the scores cannot be judged here.",
+    }
+
+
+def flatten_settings(settings, prefix: str = "") -> list[tuple[str, str]]:
+    """Nested settings -> (dotted key, text) pairs; attributes are shown in their own section."""
+    out: list[tuple[str, str]] = []
+    if isinstance(settings, dict):
+        for key, value in settings.items():
+            if key in ("attributes", "brands") and not prefix:
+                continue
+            name = f"{prefix}.{key}" if prefix else str(key)
+            if isinstance(value, dict) and value:
+                out += flatten_settings(value, name)
+            else:
+                out.append((name, _setting_text(value)))
+    return out
+
+
+def _setting_text(value) -> str:
+    if value is None:
+        return "not set (automatic)"
+    if isinstance(value, (list, tuple)):
+        return ", ".join(str(v) for v in value) if value else "(none)"
+    if isinstance(value, dict):
+        return "(none)"
+    return str(value)
+
+
+# --------------------------------------------------------------------------
+# Building the page
+
+
+def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, seed: int, cache_dir: Path | None) -> str:
+    """The whole report as HTML text.
+
+    Parameters
+    ----------
+    out : the loaded output folder.
+    thumbnail_px : longest side of embedded thumbnails.
+    max_thumbnails : cap on embedded thumbnails (beyond: seeded sample + exemplars).
+    seed : seed of that sample.
+    cache_dir : where the thumbnail cache lives (None: no cache).
+    """
+    from bokeh.embed import file_html
+    from bokeh.resources import INLINE
+
+    run = out.run or {}
+    notes: list[str] = list(out.problems)
+    images_all = out.get("images")
+    if images_all is None:
+        images_all = pd.DataFrame(columns=["image_id", "path", "relpath", "brand", "category", "source", "status", "reason"])
+    images_all = images_all.copy()
+    for col in ("brand", "category", "source", "relpath", "status", "reason"):
+        if col in images_all:
+            images_all[col] = images_all[col].fillna("").astype(str)
+    usable = images_all[images_all["status"] == "ok"].reset_index(drop=True) if "status" in images_all else images_all
+
+    brands = sorted(usable["brand"].unique().tolist()) if "brand" in usable else []
+    brand_category = (
+        usable.drop_duplicates("brand").set_index("brand")["category"].to_dict() if "category" in usable else {}
+    )
+    categories = sorted(set(brand_category.values()))
+    sources = [s for s in ("consumer", "owned") if "source" in usable and (usable["source"] == s).any()]
+    sources += sorted(set(usable["source"]) - set(sources)) if "source" in usable else []
+
+    # ---- contexts and map points
+    ctx_table = out.get("contexts")
+    image_contexts = out.get("image_contexts")
+    has_map = out.has("image_contexts", "image_id", "context_id", "map_x", "map_y")
+    context_list: list[dict] = []
+    if out.has("contexts", "context_id", "context"):
+        ctx_sorted = ctx_table.sort_values("context_id")
+        ctx_sorted = ctx_sorted[ctx_sorted["context_id"] >= 0]
+        palette = colours.categorical(len(ctx_sorted))
+        for colour, row in zip(palette, ctx_sorted.itertuples(index=False)):
+            rec = row._asdict()
+            context_list.append({
+                "id": int(rec["context_id"]),
+                "name": str(rec["context"]),
+                "size": int(rec["size"]) if "size" in rec and pd.notna(rec["size"]) else None,
+                "name_score": _clean(rec.get("name_score")),
+                "exemplars": str(rec.get("exemplars") or "").split(),
+                "color": colour,
+            })
+    elif has_map:
+        ids = sorted(int(c) for c in image_contexts["context_id"].unique() if c >= 0)
+        names = image_contexts.drop_duplicates("context_id").set_index("context_id")["context"].to_dict()
+        for colour, cid in zip(colours.categorical(len(ids)), ids):
+            context_list.append({"id": cid, "name": str(names.get(cid, cid)), "size": None, "name_score": None,
+                                 "exemplars": [], "color": colour})
+    context_by_id = {c["id"]: c for c in context_list}
+
+    points = usable[[c for c in ("image_id", "relpath", "brand", "category", "source") if c in usable]].copy()
+    if has_map:
+        ic = image_contexts.drop_duplicates("image_id").set_index("image_id")
+        points = points[points["image_id"].isin(ic.index)].reset_index(drop=True)
+        sub = ic.loc[points["image_id"]]
+        points["context_id"] = sub["context_id"].astype(int).to_numpy()
+        points["membership"] = sub["membership"].astype(float).to_numpy() if "membership" in sub else 0.0
+        points["map_x"] = sub["map_x"].astype(float).to_numpy()
+        points["map_y"] = sub["map_y"].astype(float).to_numpy()
+    attributes: list[str] = []
+    prob_matrix = None
+    if out.has("image_attributes", "image_id", "attribute", "probability"):
+        ia = out.get("image_attributes")
+        if out.has("attribute_definitions", "attribute"):
+            attributes = [str(a) for a in out.get("attribute_definitions")["attribute"]]
+        else:
+            attributes = list(dict.fromkeys(ia["attribute"].astype(str)))
+        wide = ia.assign(attribute=ia["attribute"].astype(str)).pivot_table(
+            index="image_id", columns="attribute", values="probability", aggfunc="first"
+        )
+        attributes = [a for a in attributes if a in wide.columns]
+        prob_matrix = wide.reindex(points["image_id"])[attributes].to_numpy(dtype=float)
+
+    # ---- thumbnails
+    exemplar_ids = [i for c in context_list for i in c["exemplars"]]
+    usable_ids = usable["image_id"].tolist() if "image_id" in usable else []
+    choice = choose_thumbnail_ids(usable_ids, exemplar_ids, max_thumbnails, seed)
+    thumbs: dict[str, str] = {}
+    if choice.ids and "path" in usable:
+        cache_file = cache_dir / f"thumbnails_{thumbnail_px}.parquet" if cache_dir else None
+        thumbs = thumbnails_for(usable, choice.ids, thumbnail_px, cache_file)
+        unreadable = len(choice.ids) - len(thumbs)
+        if unreadable:
+            notes.append(
+                f"{unreadable:,} image file(s) could not be read again for thumbnails (moved or changed since the run); "
+                "they appear on the map without a picture."
+            )
+
+    # ---- per-point payload (columnar: compact and fast to read in the page)
+    brand_ix = {b: i for i, b in enumerate(brands)}
+    source_ix = {s: i for i, s in enumerate(sources)}
+    cat_ix = {c: i for i, c in enumerate(categories)}
+    point_payload = {
+        "id": points["image_id"].tolist(),
+        "file": points["relpath"].tolist() if "relpath" in points else [""] * len(points),
+        "b": [brand_ix.get(b, -1) for b in points.get("brand", [])],
+        "s": [source_ix.get(s, -1) for s in points.get("source", [])],
+        "k": [cat_ix.get(c, -1) for c in points.get("category", [])],
+        "c": points["context_id"].tolist() if "context_id" in points else [-1] * len(points),
+        "t": [1 if i in thumbs else 0 for i in points["image_id"]],
+        "p": (
+            [[None if not math.isfinite(v) else round(v, 3) for v in col] for col in prob_matrix.T]
+            if prob_matrix is not None else []
+        ),
+    }
+
+    # ---- figures
+    models = []
+    plot_names: set[str] = set()
+
+    def add(model):
+        if model is not None:
+            models.append(model)
+            plot_names.add(model.name)
+
+    map_colours = []
+    if has_map and len(points):
+        for cid in point_payload["c"]:
+            map_colours.append(context_by_id[cid]["color"] if cid in context_by_id else colours.UNASSIGNED)
+        add(figures.context_map(points["map_x"].to_numpy(), points["map_y"].to_numpy(), map_colours))
+
+    bc = out.get("brand_contexts")
+    has_bc = out.has("brand_contexts", "brand", "context_id", "index", "share")
+    bc_all = None
+    if has_bc:
+        bc = bc.assign(brand=bc["brand"].astype(str), context=bc["context"].astype(str))
+        bc_all = bc[bc["source"] == "all"] if "source" in bc else bc
+        if bc_all.empty:
+            bc_all = bc
+        order = [(c["id"], c["name"]) for c in context_list] or list(
+            bc_all.drop_duplicates("context_id").sort_values("context_id")[["context_id", "context"]].itertuples(index=False, name=None)
+        )
+        add(figures.context_heatmap(bc_all, [b for b in brands if b in set(bc_all["brand"])] or sorted(set(bc_all["brand"])), order))
+
+    attr_sections = []
+    shares = out.get("attribute_shares")
+    if out.has("attribute_shares", "level", "brand", "source", "attribute", "share", "share_low", "share_high"):
+        shares = shares.assign(brand=shares["brand"].astype(str), attribute=shares["attribute"].astype(str))
+        gaps = out.get("attribute_gaps")
+        if gaps is not None and "attribute" in gaps:
+            gaps = gaps.assign(attribute=gaps["attribute"].astype(str), brand=gaps["brand"].astype(str))
+        defs = out.get("attribute_definitions")
+        defs_by = {}
+        if defs is not None and "attribute" in defs:
+            for rec in defs.to_dict("records"):
+                defs_by[str(rec["attribute"])] = rec
+        attr_names = attributes or list(dict.fromkeys(shares["attribute"]))
+        for k, attr in enumerate(attr_names):
+            rows = shares[(shares["level"] == "brand") & (shares["attribute"] == attr)]
+            g = gaps[gaps["attribute"] == attr] if gaps is not None and "attribute" in gaps else None
+            name = f"attribute_chart_{k}"
+            chart = figures.attribute_chart(attr, rows, g, [b for b in brands if b in set(rows["brand"])] or sorted(set(rows["brand"])), name)
+            add(chart)
+            d = defs_by.get(attr, {})
+            cat_rows = shares[(shares["level"] == "category") & (shares["attribute"] == attr) & (shares["source"] == "all")]
+            sig = []
+            if g is not None and "significant" in g:
+                for rec in g[g["significant"].astype(bool)].to_dict("records"):
+                    sig.append({"brand": rec["brand"], "gap": fmt_pct_points(rec.get("gap")),
+                                "low": fmt_pct_points(rec.get("gap_low")), "high": fmt_pct_points(rec.get("gap_high"))})
+            attr_sections.append({
+                "name": attr,
+                "chart": name if chart is not None else None,
+                "positive": _split_prompts(d.get("positive_descriptions", d.get("positive_prompts", ""))),
+                "negative": _split_prompts(d.get("negative_descriptions", d.get("negative_prompts", ""))),
+                "positive_prompts": _split_prompts(d.get("positive_prompts", "")),
+                "negative_prompts": _split_prompts(d.get("negative_prompts", "")),
+                "threshold": fmt_number(d.get("threshold")) if d else "",
+                "threshold_from": str(d.get("threshold_from", "")) if d else "",
+                "scored_by": str(d.get("scored_by", "")) if d else "",
+                "category_shares": [(str(r["category"]), f"{100 * r['share']:.1f} %") for r in cat_rows.to_dict("records")],
+                "significant": sig,
+            })
+
+    comparison_plots = []
+    if out.has("brand_map", "source", "brand", "pc1", "pc2"):
+        bm = out.get("brand_map")
+        loads = out.get("brand_map_loadings") if out.has("brand_map_loadings", "source", "attribute", "loading_1", "loading_2") else None
+        for k, src in enumerate(s for s in ("consumer", "owned", "survey") if s in set(bm["source"])):
+            name = f"biplot_{k}"
+            fig = figures.biplot(bm, loads, src, name)
+            add(fig)
+            if fig is not None:
+                comparison_plots.append({"name": name, "kind": "biplot", "source": src})
+    if out.has("brand_displacement", "brand", "consumer_x", "consumer_y", "owned_x", "owned_y"):
+        fig = figures.displacement_plot(out.get("brand_displacement"), "displacement_plot")
+        add(fig)
+    if out.has("brand_vector_map", "brand", "source", "x", "y"):
+        add(figures.vector_map_plot(out.get("brand_vector_map"), "vector_map_plot"))
+
+    # ---- section data for the template
+    payload_tables = {}
+    for name, table in out.tables.items():
+        if name not in PER_IMAGE_TABLES:
+            payload_tables[name] = table_json(table)
+    photo_table = points.drop(columns=[c for c in ("membership",) if c in points]).copy()
+    if "context_id" in photo_table:
+        photo_table.insert(
+            photo_table.columns.get_loc("context_id") + 1, "context",
+            [context_by_id[c]["name"] if c in context_by_id else "unassigned" for c in photo_table["context_id"]],
+        )
+    if prob_matrix is not None:
+        for j, a in enumerate(attributes):
+            photo_table[f"p_{a}"] = prob_matrix[:, j]
+    payload_tables["photos"] = table_json(photo_table)
+
+    brand_view = _brand_view_data(out, brands, bc, points, thumbs)
+    brand_maps = _brand_map_points(out)
+
+    payload = {
+        "brands": brands,
+        "brandCategory": brand_category,
+        "categories": categories,
+        "sources": sources,
+        "contexts": [{k: c[k] for k in ("id", "name", "size", "color", "exemplars")} for c in context_list],
+        "attributes": attributes,
+        "points": point_payload,
+        "colours": {
+            "brand": colours.categorical(len(brands) + 3)[3:],
+            "source": {"consumer": colours.CONSUMER, "owned": colours.OWNED},
+            "category": colours.categorical(len(categories) + 7)[7:],
+            "sequential": colours.SEQUENTIAL,
+            "unassigned": colours.UNASSIGNED,
+        },
+        "brandView": brand_view,
+        "brandMaps": brand_maps,
+        "tables": payload_tables,
+        "galleryLimit": GALLERY_LIMIT,
+    }
+
+    overview = _overview(run, out, usable, images_all, choice, thumbs, notes)
+    contexts_section = _contexts_section(out, context_list, bc_all, brands)
+
+    from jinja2 import Environment, PackageLoader, select_autoescape
+
+    env = Environment(
+        loader=PackageLoader("explore", "report"),
+        autoescape=select_autoescape(default=True, default_for_string=True),
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+    template = env.get_template("page.html.jinja")
+    css = resources.files("explore.report").joinpath("report.css").read_text(encoding="utf-8")
+    js = resources.files("explore.report").joinpath("report.js").read_text(encoding="utf-8")
+    if "</script" in js.lower():
+        raise RuntimeError("report.js must not contain a closing script tag")
+
+    title = f"{run.get('study') or out.folder.name} — explore report"
+    variables = dict(
+        study=run.get("study") or out.folder.name,
+        overview=overview,
+        brands=brands,
+        categories=categories,
+        sources=sources,
+        attributes=attributes,
+        has_map=has_map and len(points) > 0,
+        map_missing=out.missing("image_contexts", "image_id", "context_id", "map_x", "map_y"),
+        n_points=len(points),
+        contexts=contexts_section,
+        heatmap_missing=out.missing("brand_contexts", "brand", "context_id", "index", "share"),
+        attr_sections=attr_sections,
+        attr_missing=out.missing("attribute_shares", "level", "brand", "source", "attribute", "share", "share_low", "share_high"),
+        agreement=_agreement(out),
+        comparison_plots=comparison_plots,
+        compare_missing=out.missing("brand_map", "source", "brand", "pc1", "pc2"),
+        displacement=_displacement_table(out),
+        survey=html_table(out.get("survey")) if out.has("survey") else None,
+        plot_names=plot_names,
+        report_css=css,
+        report_js=js,
+        data_json=script_json(payload),
+        thumbs_json=script_json(thumbs),
+        built_at=datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
+    )
+    if not models:
+        # bokeh needs at least one root; an empty spacer keeps the page valid.
+        from bokeh.models import Spacer
+
+        models = [Spacer(name="empty_spacer", width=1, height=1)]
+    return file_html(models, INLINE, title=title, template=template, template_variables=variables)
+
+
+def fmt_pct_points(v) -> str:
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return "–"
+    return "–" if not math.isfinite(v) else f"{100 * v:+.1f}"
+
+
+def _split_prompts(text) -> list[str]:
+    if text is None:
+        return []
+    if isinstance(text, (list, tuple, np.ndarray)):
+        return [str(t) for t in text]
+    try:
+        if pd.isna(text):
+            return []
+    except (TypeError, ValueError):
+        pass
+    return [t.strip() for t in str(text).split(" | ") if t.strip()]
+
+
+def _overview(run: dict, out: OutputFolder, usable: pd.DataFrame, images_all: pd.DataFrame,
+              choice: ThumbnailChoice, thumbs: dict, notes: list[str]) -> dict:
+    counts_rows = []
+    if len(usable) and {"brand", "source"} <= set(usable.columns):
+        pivot = usable.pivot_table(index="brand", columns="source", values="image_id", aggfunc="count", fill_value=0)
+        for brand, row in pivot.iterrows():
+            cells = {s: int(row.get(s, 0)) for s in ("consumer", "owned")}
+            counts_rows.append({
+                "brand": brand,
+                "category": str(usable.loc[usable["brand"] == brand, "category"].iloc[0]) if "category" in usable else "",
+                "consumer": cells["consumer"], "owned": cells["owned"], "total": int(row.sum()),
+            })
+    skipped = images_all[images_all["status"] != "ok"] if "status" in images_all else images_all.iloc[0:0]
+    status_counts = skipped["status"].value_counts().to_dict() if len(skipped) else {}
+    near = 0
+    if "near_duplicate_of" in usable:
+        near = int((usable["near_duplicate_of"].fillna("").astype(str) != "").sum())
+    settings = run.get("settings") or {}
+    study_attrs = settings.get("attributes") or []
+    encoder_id = str(run.get("encoder_id") or "")
+    written = str(run.get("written_at") or "")
+    return {
+        "written_at": written.replace("T", " ").replace("+00:00", " UTC"),
+        "encoder_id": encoder_id or "not recorded",
+        "encoder_notice": str(run.get("encoder_notice") or ""),
+        "quality": encoder_quality(encoder_id),
+        "found": int(run.get("counts", {}).get("found", len(images_all))),
+        "used": len(usable),
+        "skipped": len(skipped),
+        "n_brands": len(set(usable["brand"])) if "brand" in usable else 0,
+        "counts": counts_rows,
+        "status_counts": sorted(status_counts.items(), key=lambda kv: -kv[1]),
+        "skipped_table": html_table(skipped, ["relpath", "brand", "source", "status", "reason", "duplicate_of"])
+        if len(skipped) else None,
+        "near_duplicates": near,
+        "settings": flatten_settings(settings),
+        "study_attributes": [str(a.get("name", "")) for a in study_attrs if isinstance(a, dict)],
+        "stage_seconds": [(k, f"{float(v):.1f} s") for k, v in (run.get("stage_seconds") or {}).items()],
+        "run_notes": [str(n) for n in run.get("notes") or []],
+        "notes": notes,
+        "thumbnails": choice.describe() if choice.total else "No usable images, so no thumbnails.",
+        "thumbnails_sampled": choice.sampled,
+        "n_thumbs": len(thumbs),
+        "tables": sorted(n for n in out.tables if n not in PER_IMAGE_TABLES),
+        "folder": str(out.folder),
+    }
+
+
+def _contexts_section(out: OutputFolder, context_list: list[dict], bc_all, brands: list[str]) -> dict:
+    cards = []
+    for c in context_list:
+        indices = []
+        if bc_all is not None:
+            rows = bc_all[bc_all["context_id"] == c["id"]]
+            for rec in rows.sort_values("index", ascending=False).to_dict("records"):
+                idx = _clean(rec.get("index"))
+                indices.append({
+                    "brand": rec["brand"],
+                    "index": "–" if idx is None else f"{idx:.0f}",
+                    "count": fmt_number(rec.get("count")),
+                    "colour": colours.diverging_index(idx if idx is not None else float("nan")),
+                    "dark": idx is not None and idx > 0 and abs(math.log2(idx / 100)) > 1.2,
+                })
+        cards.append({**c, "indices": indices})
+    lists = []
+    for key, title in (("signature_contexts", "Signature contexts"), ("unexpected_contexts", "Unexpected contexts")):
+        table = out.get(key)
+        if table is None or not len(table):
+            lists.append({"key": key, "title": title, "missing": out.missing(key), "rows": []})
+            continue
+        preferred = ["brand", "source", "context", "count", "brand_n", "share", "category_share",
+                     "index", "q_value", "reason", "note"]
+        skip = {"context_id", "exemplars", "category", "p_value"}
+        cols = [c for c in preferred if c in table.columns] + [
+            c for c in table.columns if c not in preferred and c not in skip
+        ][:3]
+        if "source" in cols and set(table["source"].astype(str)) <= {"all"}:
+            cols.remove("source")
+        rows = []
+        sort_cols = [c for c in ("brand", "index") if c in table.columns]
+        t = table.sort_values(sort_cols, ascending=[True, False][: len(sort_cols)]) if sort_cols else table
+        for rec in t.head(MAX_HTML_ROWS).to_dict("records"):
+            rows.append({
+                "cells": [_fmt_cell(col, rec.get(col)) for col in cols],
+                "brand": str(rec.get("brand", "")),
+                "context_id": int(rec["context_id"]) if "context_id" in rec and pd.notna(rec["context_id"]) else None,
+                "context": str(rec.get("context", "")),
+            })
+        lists.append({"key": key, "title": title, "missing": "", "columns": cols, "rows": rows, "total": len(table)})
+    return {
+        "cards": cards,
+        "lists": lists,
+        "missing": "" if context_list else out.missing("contexts", "context_id", "context"),
+        "source_gaps": html_table(out.get("source_context_gaps")) if out.has("source_context_gaps") else None,
+    }
+
+
+def _fmt_cell(column: str, value) -> str:
+    if column in ("share", "category_share", "consumer_share", "owned_share") and value is not None:
+        try:
+            v = float(value)
+            return "–" if not math.isfinite(v) else f"{100 * v:.1f} %"
+        except (TypeError, ValueError):
+            pass
+    if column == "index" and value is not None:
+        try:
+            v = float(value)
+            return "–" if not math.isfinite(v) else f"{v:.0f}"
+        except (TypeError, ValueError):
+            pass
+    return fmt_number(value)
+
+
+def _agreement(out: OutputFolder):
+    if not out.has("agreement"):
+        return {"missing": out.missing("agreement")}
+    cols = ["category", "attribute", "metric_a", "metric_b", "n_brands", "concordant_share", "kendall_tau",
+            "kendall_p", "spearman_rho", "spearman_p", "pearson_r", "pearson_p", "note"]
+    return {"missing": "", "table": html_table(out.get("agreement"), cols)}
+
+
+def _displacement_table(out: OutputFolder):
+    if not out.has("brand_displacement", "brand"):
+        return None
+    cols = ["brand", "category", "displacement", "survey_displacement", "owned_rank_gap", "survey_rank_gap",
+            "vector_distance", "vector_displacement"]
+    return html_table(out.get("brand_displacement"), cols)
+
+
+def _brand_view_data(out: OutputFolder, brands: list[str], bc, points: pd.DataFrame, thumbs: dict) -> dict:
+    """Per brand: contexts with share/index and exemplar ids, signature/unexpected, attribute shares."""
+    view: dict[str, dict] = {b: {"contexts": [], "signature": [], "unexpected": [], "attributes": []} for b in brands}
+    if bc is not None and "brand" in bc:
+        ex = {}
+        if "context_id" in points and len(points):
+            pts = points[points["image_id"].isin(thumbs.keys())]
+            pts = pts.sort_values("membership", ascending=False)
+            for (b, c), g in pts.groupby(["brand", "context_id"], sort=False):
+                ex[(b, int(c))] = g["image_id"].head(4).tolist()
+        for src in ("all", "consumer", "owned"):
+            part = bc[bc["source"] == src] if "source" in bc else (bc if src == "all" else bc.iloc[0:0])
+            for rec in part.to_dict("records"):
+                b = rec["brand"]
+                if b not in view:
+                    continue
+                view[b]["contexts"].append({
+                    "source": src,
+                    "id": int(rec["context_id"]),
+                    "name": str(rec.get("context", "")),
+                    "count": _clean(rec.get("count")),
+                    "n": _clean(rec.get("brand_n")),
+                    "share": _clean(rec.get("share")),
+                    "categoryShare": _clean(rec.get("category_share")),
+                    "index": _clean(rec.get("index")),
+                    "q": _clean(rec.get("q_value")),
+                    "exemplars": ex.get((b, int(rec["context_id"])), []) if src == "all" else [],
+                })
+    for key, name in (("signature_contexts", "signature"), ("unexpected_contexts", "unexpected")):
+        table = out.get(key)
+        if table is None or "brand" not in table:
+            continue
+        for rec in table.to_dict("records"):
+            b = str(rec["brand"])
+            if b in view:
+                view[b][name].append({
+                    "id": _clean(rec.get("context_id")),
+                    "name": str(rec.get("context", "")),
+                    "index": _clean(rec.get("index")),
+                    "share": _clean(rec.get("share")),
+                    "count": _clean(rec.get("count")),
+                    "source": str(rec.get("source", "")) if rec.get("source") is not None else "",
+                })
+    if out.has("attribute_shares", "level", "brand", "source", "attribute", "share"):
+        sh = out.get("attribute_shares")
+        sh = sh[sh["level"] == "brand"]
+        gaps = out.get("attribute_gaps")
+        sig = set()
+        if gaps is not None and {"brand", "attribute", "significant"} <= set(gaps.columns):
+            sig = {(str(b), str(a)) for b, a, s in zip(gaps["brand"], gaps["attribute"], gaps["significant"]) if bool(s)}
+        for rec in sh.to_dict("records"):
+            b = str(rec["brand"])
+            if b in view:
+                view[b]["attributes"].append({
+                    "attribute": str(rec["attribute"]),
+                    "source": str(rec["source"]),
+                    "share": _clean(rec.get("share")),
+                    "low": _clean(rec.get("share_low")),
+                    "high": _clean(rec.get("share_high")),
+                    "n": _clean(rec.get("n")),
+                    "significantGap": (b, str(rec["attribute"])) in sig,
+                })
+    return view
+
+
+def _brand_map_points(out: OutputFolder) -> list[dict]:
+    """Small brand maps for the brand view: the consumer attribute map and the image-vector map."""
+    maps = []
+    if out.has("brand_map", "source", "brand", "pc1", "pc2"):
+        bm = out.get("brand_map")
+        for src in ("consumer", "owned", "survey"):
+            part = bm[bm["source"] == src]
+            if len(part):
+                maps.append({"title": f"attribute map ({src} shares)" if src != "survey" else "attribute map (survey)",
+                             "points": [{"brand": str(b), "x": _clean(x), "y": _clean(y)}
+                                        for b, x, y in zip(part["brand"], part["pc1"], part["pc2"])]})
+                break
+    if out.has("brand_vector_map", "brand", "source", "x", "y"):
+        vm = out.get("brand_vector_map")
+        part = vm[vm["source"] == "all"]
+        if len(part):
+            maps.append({"title": "look-alike map (mean image vectors)",
+                         "points": [{"brand": str(b), "x": _clean(x), "y": _clean(y)}
+                                    for b, x, y in zip(part["brand"], part["x"], part["y"])]})
+    return maps

@@ -1,0 +1,140 @@
+"""Small JPEG thumbnails, base64 encoded, for embedding in the report.
+
+Which images get one: every usable image up to ``max_thumbnails``; beyond it a
+seeded random sample plus every context exemplar (exemplars are what the
+report shows first, so they are never sampled out). Thumbnails are cached in
+the output folder (``cache/thumbnails_<px>.parquet``, keyed by content sha256)
+so that rebuilding a report does not decode every photo again.
+"""
+
+from __future__ import annotations
+
+import base64
+import io
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+JPEG_QUALITY = 72  # common practice for small previews: little visible loss, small files
+
+
+@dataclass
+class ThumbnailChoice:
+    """Which image ids get a thumbnail and why."""
+
+    ids: list[str]
+    total: int
+    sampled: bool
+    seed: int
+    cap: int
+
+    def describe(self) -> str:
+        if not self.sampled:
+            return f"Thumbnails are embedded for all {self.total:,} usable images."
+        return (
+            f"Thumbnails are embedded for {len(self.ids):,} of {self.total:,} usable images: "
+            f"a random sample (seed {self.seed}) up to the cap of {self.cap:,}, plus every "
+            "context exemplar. Points without a thumbnail still appear on the map."
+        )
+
+
+def choose_thumbnail_ids(
+    usable_ids: list[str], exemplar_ids: list[str], cap: int, seed: int
+) -> ThumbnailChoice:
+    """Pick the images that get a thumbnail.
+
+    Parameters
+    ----------
+    usable_ids : ids of all usable images, in table order.
+    exemplar_ids : ids that must always be included (context exemplars).
+    cap : at most this many thumbnails when sampling (exemplars may add a few).
+    seed : seed of the sample (the study's seed), so rebuilds embed the same images.
+
+    Returns
+    -------
+    ThumbnailChoice with ids in table order.
+    """
+    if cap < 0:
+        raise ValueError(f"report.max_thumbnails must not be negative, got {cap}")
+    total = len(usable_ids)
+    if total <= cap:
+        return ThumbnailChoice(list(usable_ids), total, False, seed, cap)
+    known = set(usable_ids)
+    must = [i for i in dict.fromkeys(exemplar_ids) if i in known]
+    must_set = set(must)
+    rest = [i for i in usable_ids if i not in must_set]
+    room = max(cap - len(must), 0)
+    rng = np.random.default_rng(seed)
+    picked = set(rng.choice(len(rest), size=min(room, len(rest)), replace=False).tolist()) if room else set()
+    chosen = must_set | {rest[k] for k in picked}
+    return ThumbnailChoice([i for i in usable_ids if i in chosen], total, True, seed, cap)
+
+
+def make_thumbnail(path: str | Path, px: int) -> bytes | None:
+    """Decode one image and return a JPEG of at most ``px`` x ``px`` pixels (None if unreadable)."""
+    from PIL import Image, ImageOps
+
+    try:
+        with Image.open(path) as im:
+            im.draft("RGB", (px * 2, px * 2))  # JPEG: decode at reduced scale, much faster
+            im = ImageOps.exif_transpose(im)
+            if im.mode not in ("RGB", "L"):
+                im = im.convert("RGBA")
+                background = Image.new("RGB", im.size, (255, 255, 255))
+                background.paste(im, mask=im.getchannel("A"))
+                im = background
+            im = im.convert("RGB")
+            im.thumbnail((px, px), Image.Resampling.LANCZOS)
+            buf = io.BytesIO()
+            im.save(buf, "JPEG", quality=JPEG_QUALITY, optimize=True)
+            return buf.getvalue()
+    except Exception:  # unreadable now (moved, damaged): the report shows a placeholder
+        return None
+
+
+def thumbnails_for(
+    images: pd.DataFrame, ids: list[str], px: int, cache_file: Path | None = None
+) -> dict[str, str]:
+    """Base64 JPEG thumbnails for ``ids`` (image_id -> base64 text, no ``data:`` prefix).
+
+    Parameters
+    ----------
+    images : the images table (needs image_id, path, sha256).
+    ids : which images.
+    px : longest side in pixels.
+    cache_file : optional parquet cache keyed by sha256; read first, updated after.
+
+    Returns
+    -------
+    dict; images whose file cannot be read now are left out.
+    """
+    if not ids:
+        return {}
+    rows = images.set_index("image_id").loc[ids, ["path", "sha256"]]
+    cached: dict[str, bytes] = {}
+    if cache_file is not None and cache_file.is_file():
+        try:
+            table = pd.read_parquet(cache_file)
+            cached = dict(zip(table["sha256"], table["jpeg"]))
+        except Exception:
+            cached = {}
+    out: dict[str, str] = {}
+    fresh: dict[str, bytes] = {}
+    for image_id, path, sha in zip(rows.index, rows["path"], rows["sha256"]):
+        data = cached.get(sha) if sha else None
+        if data is None:
+            data = make_thumbnail(path, px)
+            if data is None:
+                continue
+            if sha:
+                fresh[sha] = data
+        out[image_id] = base64.b64encode(data).decode("ascii")
+    if cache_file is not None and fresh:
+        merged = {**cached, **fresh}
+        cache_file.parent.mkdir(parents=True, exist_ok=True)
+        tmp = cache_file.with_suffix(".tmp")
+        pd.DataFrame({"sha256": list(merged), "jpeg": list(merged.values())}).to_parquet(tmp, index=False)
+        tmp.replace(cache_file)
+    return out

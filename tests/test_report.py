@@ -1,0 +1,232 @@
+"""The report writer, without a browser: one file, escaping, thumbnails, missing sections.
+
+Browser checks (console, network, map, hover, selection) are in test_report_browser.py.
+Fixtures are synthetic output folders written by tests/report_synthetic.py.
+"""
+
+from __future__ import annotations
+
+import base64
+import html.parser
+import io
+import json
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+import report_synthetic as synth
+from explore.report import ReportError, write_report
+from explore.report.page import script_json
+from explore.report.thumbnails import choose_thumbnail_ids
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    out = synth.make_output_folder(tmp_path_factory.mktemp("rep"), 90)
+    path = write_report(out)
+    return out, path, path.read_text(encoding="utf-8")
+
+
+@pytest.fixture(scope="module")
+def hostile(tmp_path_factory):
+    out = synth.make_output_folder(tmp_path_factory.mktemp("hostile"), 40, hostile=True)
+    path = write_report(out)
+    return out, path, path.read_text(encoding="utf-8")
+
+
+def _embedded(text: str, element_id: str):
+    m = re.search(rf'<script type="application/json" id="{element_id}">(.*?)</script>', text, re.S)
+    assert m, f"no {element_id} block"
+    return json.loads(m.group(1))
+
+
+class _Collector(html.parser.HTMLParser):
+    """Every tag and attribute of the page, as a standard HTML parser sees them (Python's html.parser)."""
+
+    def __init__(self):
+        super().__init__()
+        self.tags: list[tuple[str, dict]] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+
+def test_report_is_written_next_to_the_tables(built):
+    out, path, text = built
+    assert path == out / "report.html"
+    assert text.startswith("<!DOCTYPE html>")
+    for section in ("overview", "brand-view", "context-map", "contexts", "brand-by-context", "attributes", "comparisons"):
+        assert f'id="{section}"' in text
+
+
+def test_report_is_one_file(built):
+    _, _, text = built
+    # Nothing loaded from elsewhere: no external script, stylesheet, frame or image.
+    assert not re.search(r"<script[^>]*\ssrc\s*=", text, re.I)
+    assert not re.search(r"<link[^>]*\shref\s*=", text, re.I)
+    parser = _Collector()
+    parser.feed(text)
+    for tag, attrs in parser.tags:
+        for key in ("src", "href", "data", "action", "poster"):
+            value = (attrs.get(key) or "").strip()
+            if value:
+                assert value.startswith(("#", "data:")), f"<{tag} {key}={value!r}> points outside the file"
+    # CSS url(...) may only point at data: URIs or fragments.
+    for m in re.finditer(r"url\(\s*['\"]?([^'\")\s]*)", text):
+        target = m.group(1)
+        assert target == "" or target.startswith(("data:", "#", "$", "blob:")) or "://" not in target and not target.startswith("//"), target
+    # bokeh's own JavaScript is inlined, not fetched from a CDN.
+    assert "cdn.bokeh.org" not in text.split("<script", 1)[0]
+    assert "Bokeh" in text and len(text) > 1_000_000
+
+
+def test_every_usable_image_gets_a_small_thumbnail(built):
+    from PIL import Image
+
+    out, _, text = built
+    thumbs = _embedded(text, "explore-thumbs")
+    images = pd.read_parquet(out / "images.parquet")
+    usable = images[images["status"] == "ok"]
+    assert set(thumbs) == set(usable["image_id"])
+    # run.json of the fixture asks for 96 px thumbnails.
+    for b64 in list(thumbs.values())[:10]:
+        im = Image.open(io.BytesIO(base64.b64decode(b64)))
+        assert im.format == "JPEG" and max(im.size) <= 96
+
+
+def test_points_match_the_image_contexts_table(built):
+    out, _, text = built
+    data = _embedded(text, "explore-data")
+    ic = pd.read_parquet(out / "image_contexts.parquet")
+    assert data["points"]["id"] == ic["image_id"].tolist()
+    assert data["points"]["c"] == ic["context_id"].tolist()
+    ia = pd.read_parquet(out / "image_attributes.parquet")
+    first = data["attributes"][0]
+    probs = ia[ia["attribute"] == first].set_index("image_id")["probability"]
+    assert data["points"]["p"][0] == pytest.approx(probs.loc[ic["image_id"]].round(3).tolist(), abs=1e-9)
+
+
+def test_embedded_tables_equal_the_parquet_tables(built):
+    out, _, text = built
+    data = _embedded(text, "explore-data")
+    for name in ("attribute_shares", "brand_contexts", "agreement", "skipped"):
+        table = pd.read_parquet(out / f"{name}.parquet")
+        embedded = pd.DataFrame(data["tables"][name]["rows"], columns=data["tables"][name]["columns"])
+        assert list(embedded.columns) == list(table.columns)
+        pd.testing.assert_frame_equal(embedded, table, check_dtype=False)
+
+
+def test_overview_states_encoder_quality_and_cautions(built):
+    _, _, text = built
+    assert "lower fidelity than a CLIP model" in text
+    assert synth.ENCODER_ID in text
+    assert "personal data" in text
+    assert "gender or age" in text and "hand labels" in text
+    assert "2026-01-02 03:04:05 UTC" in text  # run date from run.json
+
+
+def test_script_json_cannot_close_its_script_block():
+    value = {"a": "</script><script>alert(1)</script>", "b": "x & y > z", "c": "line\u2028sep", "n": [1, 2.5, None]}
+    text = script_json(value)
+    assert "<" not in text and ">" not in text and "&" not in text and "\u2028" not in text
+    # The escapes are plain JSON (RFC 8259 \uXXXX), so a standard parser reads the value back unchanged.
+    assert json.loads(text) == value
+
+
+def test_hostile_names_never_appear_as_markup(hostile):
+    _, _, text = hostile
+    for raw in (synth.HOSTILE_FILE, synth.HOSTILE_BRAND, synth.HOSTILE_ATTRIBUTE, synth.HOSTILE_PROMPT,
+                synth.HOSTILE_CONTEXT, synth.HOSTILE_FOLDER, "<i>online</i>", "notes <b>x</b>"):
+        assert raw not in text, f"unescaped: {raw}"
+    # An HTML parser finds none of the injected elements or handlers.
+    parser = _Collector()
+    parser.feed(text)
+    for tag, attrs in parser.tags:
+        assert tag not in ("iframe", "svg", "u", "i") or not attrs, tag
+        assert not any(k.startswith("on") for k in attrs), (tag, attrs)
+        assert attrs.get("src") != "x"
+    # ... but the names are there as text (escaped), and the data reads back exactly.
+    assert "&lt;/script&gt;&lt;script&gt;alert(1)&lt;/script&gt;" in text
+    data = _embedded(text, "explore-data")
+    assert synth.HOSTILE_BRAND in data["brands"]
+    assert any(f.endswith(synth.HOSTILE_FILE) for f in data["points"]["file"])
+
+
+def test_thumbnail_cap_keeps_every_exemplar_and_is_seeded():
+    ids = [f"img{i:04d}" for i in range(1000)]
+    exemplars = ids[::97]
+    a = choose_thumbnail_ids(ids, exemplars, cap=100, seed=3)
+    b = choose_thumbnail_ids(ids, exemplars, cap=100, seed=3)
+    c = choose_thumbnail_ids(ids, exemplars, cap=100, seed=4)
+    assert a.sampled and a.ids == b.ids and a.ids != c.ids
+    assert len(a.ids) == 100 and set(exemplars) <= set(a.ids)
+    assert a.ids == [i for i in ids if i in set(a.ids)]  # table order kept
+    assert "sample" in a.describe() and "1,000" in a.describe()
+    under = choose_thumbnail_ids(ids, exemplars, cap=5000, seed=3)
+    assert not under.sampled and under.ids == ids
+
+
+def test_report_over_the_cap_says_it_sampled(tmp_path):
+    out = synth.make_output_folder(tmp_path, 60)
+    run = json.loads((out / "run.json").read_text())
+    run["settings"]["report"]["max_thumbnails"] = 20
+    (out / "run.json").write_text(json.dumps(run))
+    text = write_report(out).read_text(encoding="utf-8")
+    thumbs = _embedded(text, "explore-thumbs")
+    exemplars = {i for e in pd.read_parquet(out / "contexts.parquet")["exemplars"] for i in e.split()}
+    assert exemplars <= set(thumbs)
+    assert len(thumbs) == max(20, len(exemplars))
+    assert "random sample (seed 0)" in text
+    data = _embedded(text, "explore-data")
+    assert len(data["points"]["id"]) == 60  # every image is still on the map
+    assert sum(data["points"]["t"]) == len(thumbs)
+
+
+def test_sections_without_their_tables_say_so(tmp_path):
+    out = synth.make_output_folder(tmp_path, 30, with_compare=False, with_contexts=False, with_attributes=False)
+    text = write_report(out).read_text(encoding="utf-8")
+    assert "table &#39;image_contexts&#39; was not written by this run" in text
+    assert "table &#39;attribute_shares&#39; was not written by this run" in text
+    assert "table &#39;brand_map&#39; was not written by this run" in text
+    assert "table &#39;agreement&#39; was not written by this run" in text
+    assert "Photos per brand and source" in text
+
+
+def test_unreadable_table_is_reported_not_fatal(tmp_path):
+    out = synth.make_output_folder(tmp_path, 30)
+    (out / "agreement.parquet").write_bytes(b"not parquet")
+    text = write_report(out).read_text(encoding="utf-8")
+    assert "agreement.parquet: could not be read" in text
+
+
+def test_not_an_output_folder(tmp_path):
+    with pytest.raises(ReportError, match="not found"):
+        write_report(tmp_path / "nowhere")
+    with pytest.raises(ReportError, match="neither run.json nor images.parquet"):
+        write_report(tmp_path)
+
+
+def test_thumbnail_cache_makes_rebuilds_reuse_thumbnails(tmp_path):
+    out = synth.make_output_folder(tmp_path, 20)
+    first = _embedded(write_report(out).read_text(encoding="utf-8"), "explore-thumbs")
+    cache = out / "cache" / "thumbnails_96.parquet"
+    assert cache.is_file() and len(pd.read_parquet(cache)) == 20
+    # Remove the photos: a rebuild still has every thumbnail, from the cache.
+    for p in pd.read_parquet(out / "images.parquet")["path"]:
+        Path(p).unlink(missing_ok=True)
+    second = _embedded(write_report(out).read_text(encoding="utf-8"), "explore-thumbs")
+    assert second == first
+
+
+def test_cli_report_command_on_an_output_folder(tmp_path):
+    out = synth.make_output_folder(tmp_path, 20)
+    done = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(out)], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == f"report: {out / 'report.html'}"
+    bad = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(tmp_path / "none.toml")],
+                         capture_output=True, text=True)
+    assert bad.returncode == 2 and "study file not found" in bad.stderr
