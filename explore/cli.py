@@ -59,6 +59,18 @@ def build_parser() -> argparse.ArgumentParser:
     _add_encoder_options(p)
     p.set_defaults(func=cmd_demo)
 
+    # --- report (explore/report/) ---------------------------------------------------
+    p = sub.add_parser(
+        "report",
+        help="rebuild the HTML report from a study's output folder (no model needed)",
+        description="Write report.html in the study's output folder from the tables a run "
+        "left there: one self-contained file, photos embedded as small thumbnails, no "
+        "network needed to open it.",
+    )
+    p.add_argument("study", type=Path, help="study file (.toml), or the output folder itself")
+    p.set_defaults(func=cmd_report)
+    # --- end report -----------------------------------------------------------------
+
     return parser
 
 
@@ -128,6 +140,25 @@ def cmd_run(args) -> int:
 
 def cmd_demo(args) -> int:
     return _run(DEMO_STUDY, args)
+
+
+# --- report (explore/report/) -------------------------------------------------------
+def cmd_report(args) -> int:
+    from explore.report import ReportError, write_report
+    from explore.study import load_study
+
+    try:
+        if args.study.is_dir():
+            path = write_report(args.study)
+        else:
+            study = load_study(args.study)
+            path = write_report(study.output, study)
+    except ReportError as exc:
+        print(f"explore: error: {exc}", file=sys.stderr)
+        return 2
+    print(f"report: {path}")
+    return 0
+# --- end report -----------------------------------------------------------------------
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -161,6 +161,14 @@ def run_study(
         "notes": summary.notes,
     }
     (out / "run.json").write_text(json.dumps(record, indent=2), encoding="utf-8")
+
+    # --- report (explore/report/): one self-contained HTML file ----------------
+    # Last, because it reads only the output folder (tables and run.json above).
+    with timer("report"):
+        from explore.report import write_report
+
+        summary.report = write_report(out, study)
+    # --- end report --------------------------------------------------------------
     return summary
 
 
