@@ -378,7 +378,10 @@ def wilson_interval(count, n, z: float = Z95) -> tuple[np.ndarray, np.ndarray]:
         denom = 1.0 + z**2 / n
         centre = (p + z**2 / (2 * n)) / denom
         half = z / denom * np.sqrt(p * (1 - p) / n + z**2 / (4 * n**2))
-    return centre - half, centre + half
+        # At the ends the bounds are exactly 0 and 1 (the formula leaves rounding dust).
+        low = np.where(n == 0, np.nan, np.where(count == 0, 0.0, centre - half))
+        high = np.where(n == 0, np.nan, np.where(count == n, 1.0, centre + half))
+    return low, high
 
 
 def newcombe_interval(count1, n1, count2, n2, z: float = Z95) -> tuple[np.ndarray, np.ndarray]:
@@ -397,6 +400,45 @@ def newcombe_interval(count1, n1, count2, n2, z: float = Z95) -> tuple[np.ndarra
     return low, high
 
 
+def bootstrap_sums(
+    values: np.ndarray,
+    samples: int,
+    rng: np.random.Generator,
+    chunk_elements: int = 4_000_000,
+) -> np.ndarray:
+    """Column sums of ``samples`` bootstrap resamples of the rows of ``values``.
+
+    The same resamples of rows serve every column, so one draw covers all
+    attributes of a group. Drawn in chunks of bounded memory.
+
+    Parameters
+    ----------
+    values : (n, k) array.
+    samples : number of resamples.
+    rng : seeded generator.
+
+    Returns
+    -------
+    (samples, k) float64 sums.
+    """
+    v = np.asarray(values, dtype=np.float64)
+    n, k = v.shape
+    sums = np.zeros((samples, k))
+    if n == 0:
+        return sums
+    rows = max(1, chunk_elements // n)
+    for start in range(0, samples, rows):
+        b = min(rows, samples - start)
+        draws = rng.integers(0, n, size=(b, n))
+        if k <= 8:  # gathering each column is faster than building count weights
+            for j in range(k):
+                sums[start:start + b, j] = v[:, j][draws].sum(axis=1)
+        else:  # count weights times the value matrix: one matrix product for all columns
+            counts = np.bincount((draws + n * np.arange(b)[:, None]).ravel(), minlength=b * n)
+            sums[start:start + b] = counts.reshape(b, n).astype(np.float64) @ v
+    return sums
+
+
 def bootstrap_mean_interval(
     values: np.ndarray,
     samples: int,
@@ -404,11 +446,7 @@ def bootstrap_mean_interval(
     level: float = 0.95,
     chunk_elements: int = 4_000_000,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Percentile bootstrap interval of the column means of ``values``.
-
-    The same resamples of rows serve every column, so one draw covers all
-    attributes of a group. Resampling is written as count weights times the
-    value matrix (a matrix product), in chunks of bounded memory.
+    """Percentile bootstrap interval of the column means of ``values`` (Efron 1979).
 
     Parameters
     ----------
@@ -428,16 +466,15 @@ def bootstrap_mean_interval(
     if n == 0 or samples < 1:
         nan = np.full(k, np.nan)
         return (nan[0], nan[0]) if flat else (nan, nan)
-    means = np.empty((samples, k))
-    rows = max(1, chunk_elements // n)
-    for start in range(0, samples, rows):
-        b = min(rows, samples - start)
-        draws = rng.integers(0, n, size=(b, n))
-        weights = np.bincount((draws + n * np.arange(b)[:, None]).ravel(), minlength=b * n).reshape(b, n)
-        means[start:start + b] = weights @ v / n
+    means = bootstrap_sums(v, samples, rng, chunk_elements) / n
+    low, high = _percentiles(means, level)
+    return (low[0], high[0]) if flat else (low, high)
+
+
+def _percentiles(means: np.ndarray, level: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
     alpha = (1 - level) / 2
     low, high = np.quantile(means, [alpha, 1 - alpha], axis=0)
-    return (low[0], high[0]) if flat else (low, high)
+    return low, high
 
 
 def _group_rng(seed: int, key: tuple) -> np.random.Generator:
@@ -472,7 +509,8 @@ def attribute_shares(
     attribute_shares table: level (brand/category), brand ("" on category rows),
     category, source (consumer/owned/all), attribute, n, positives, share,
     share_low, share_high (95 % Wilson), mean_probability, mean_low, mean_high
-    (95 % percentile bootstrap), threshold, encoder_id.
+    (95 % percentile bootstrap, resampling within each brand x source cell),
+    threshold, encoder_id.
     """
     columns = [
         "level", "brand", "category", "source", "attribute", "n", "positives", "share",
@@ -488,29 +526,39 @@ def attribute_shares(
     prob_v = prob.to_numpy(np.float64)
     pos_v = pos.to_numpy(bool)
 
-    groups = []  # (level, brand, category, source, row mask)
-    for level, keys in (("brand", ["brand", "category"]), ("category", ["category"])):
-        for key_values, frame in meta.groupby(keys, sort=True):
-            key_values = key_values if isinstance(key_values, tuple) else (key_values,)
-            brand = key_values[0] if level == "brand" else ""
-            category = key_values[-1]
-            index = meta.index.get_indexer(frame.index)
-            groups.append((level, brand, category, "all", index))
+    # Bootstrap within each brand x source cell; a wider group (source "all", a
+    # category) adds up its cells' resampled sums, so its resamples keep the
+    # numbers of photos per cell as collected (a stratified bootstrap).
+    cells = {}
+    for key, frame in meta.groupby(["brand", "category", "source"], sort=True):
+        index = meta.index.get_indexer(frame.index)
+        sums = bootstrap_sums(prob_v[index], bootstrap_samples, _group_rng(seed, key))
+        cells[key] = (index, sums)
+
+    groups = []  # (level, brand, category, source, cell keys)
+    for level in ("brand", "category"):
+        owners = sorted({(k[0], k[1]) if level == "brand" else ("", k[1]) for k in cells})
+        for brand, category in owners:
+            mine = [k for k in cells if k[1] == category and (level == "category" or k[0] == brand)]
+            groups.append((level, brand, category, "all", mine))
             for source in SOURCES:
-                sub = index[(frame["source"] == source).to_numpy()]
-                if len(sub):
+                sub = [k for k in mine if k[2] == source]
+                if sub:
                     groups.append((level, brand, category, source, sub))
 
     threshold = definitions.set_index("attribute")["threshold"]
     encoder_id = definitions.set_index("attribute")["encoder_id"]
     rows = []
-    for level, brand, category, source, index in groups:
+    for level, brand, category, source, keys in groups:
+        index = np.concatenate([cells[k][0] for k in keys])
         n = len(index)
         positives = pos_v[index].sum(axis=0)
         low, high = wilson_interval(positives, n)
-        rng = _group_rng(seed, (level, brand, category, source))
-        mean_low, mean_high = bootstrap_mean_interval(prob_v[index], bootstrap_samples, rng)
         means = prob_v[index].mean(axis=0)
+        if bootstrap_samples > 0:
+            mean_low, mean_high = _percentiles(sum(cells[k][1] for k in keys) / n)
+        else:
+            mean_low = mean_high = np.full(len(names), np.nan)
         for j, name in enumerate(names):
             rows.append(
                 (level, brand, category, source, name, n, int(positives[j]), positives[j] / n,
@@ -652,12 +700,22 @@ def roc_points(labels: np.ndarray, scores: np.ndarray) -> tuple[np.ndarray, np.n
     return fps / max(1, (~y).sum()), tps / max(1, y.sum()), s[last]
 
 
-def youden_threshold(labels: np.ndarray, scores: np.ndarray) -> tuple[float, float]:
-    """The threshold maximising Youden's J = TPR - FPR (the highest one on ties), and J."""
+def youden_threshold(labels: np.ndarray, scores: np.ndarray, midpoint: bool = False) -> tuple[float, float]:
+    """The threshold maximising Youden's J = TPR - FPR, and J.
+
+    Calls are ``score >= threshold``. On ties in J the highest threshold wins.
+    By default the threshold is the lowest score still called positive at the
+    best operating point (as ``sklearn.metrics.roc_curve`` lists it); with
+    ``midpoint`` it is halfway down to the next lower score, which gives the
+    same calls on the labelled images and leaves a margin for new ones.
+    """
     fpr, tpr, thresholds = roc_points(labels, scores)
     j = tpr - fpr
     k = int(np.argmax(j))
-    return float(thresholds[k]), float(j[k])
+    threshold = float(thresholds[k])
+    if midpoint and k + 1 < len(thresholds):
+        threshold = float((thresholds[k] + thresholds[k + 1]) / 2)
+    return threshold, float(j[k])
 
 
 def accuracy_at(labels: np.ndarray, scores: np.ndarray, threshold: float) -> float:
@@ -875,7 +933,7 @@ def fit_probe(
     cv = StratifiedKFold(n_splits=folds, shuffle=True, random_state=seed)
     cv_probabilities = cross_val_predict(model, X, y, cv=cv, method="predict_proba")[:, 1]
     model.fit(X, y)
-    threshold, _ = youden_threshold(y, cv_probabilities)
+    threshold, _ = youden_threshold(y, cv_probabilities, midpoint=True)
     probe = {
         "coef": model.coef_[0].astype(float).tolist(),
         "intercept": float(model.intercept_[0]),
@@ -928,7 +986,7 @@ def check_attribute(
     result.mann_whitney_p = float(mannwhitneyu(p[y == 1], p[y == 0], alternative="greater").pvalue)
     result.better_than_chance = bool(result.auc_low > 0.5)
     result.accuracy = accuracy_at(y, p, threshold)
-    result.best_threshold, result.youden_j = youden_threshold(y, p)
+    result.best_threshold, result.youden_j = youden_threshold(y, p, midpoint=True)
     result.best_accuracy = accuracy_at(y, p, result.best_threshold)
     result.chance_accuracy = max(n1, n0) / len(y)
     result.reliability = reliability_table(y, p)

@@ -25,6 +25,32 @@ def _add_encoder_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--weights", type=Path, help="local open_clip checkpoint file for --encoder clip")
 
 
+# --- attributes options (explore/attributes.py) ---------------------------------
+ATTRIBUTE_HELP = (
+    "add an attribute for this command only, without editing the study file; repeatable. "
+    "Write it on one line as 'NAME: positive; positive ... / negative; negative ...': the name, "
+    "a colon, the descriptions of the positive side separated by semicolons, one slash, the "
+    "descriptions of the negative side. Example: --attribute \"sunny: bright sunshine; a clear "
+    "blue sky / grey overcast weather; rain\". The study's templates apply to it as to the others."
+)
+
+
+def _add_attribute_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--attribute", action="append", default=[], metavar="'NAME: POS; ... / NEG; ...'",
+                   help=ATTRIBUTE_HELP)
+
+
+def _with_extra_attributes(study, specs: list[str]):
+    """The study with the ``--attribute`` definitions added (refusing bad or duplicate ones)."""
+    from explore.attributes import add_attributes, parse_attribute_spec
+
+    if specs:
+        extra = [parse_attribute_spec(spec) for spec in specs]
+        study.attributes = add_attributes(study.attributes, extra, "--attribute (with the study's attributes)")
+    return study
+# --- end attributes options -----------------------------------------------------
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="explore",
@@ -53,11 +79,47 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("run", help="run a study end to end (every stage, reusing the cache)")
     p.add_argument("study", type=Path, help="study file (.toml)")
     _add_encoder_options(p)
+    _add_attribute_option(p)
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("demo", help="run the shipped demo study (fictional brands) end to end")
     _add_encoder_options(p)
+    _add_attribute_option(p)
     p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser(
+        "check",
+        help="check the study's attributes against hand labels (AUC, accuracy, reliability, probe)",
+        description="Compare each labelled attribute's zero-shot scores with hand labels: ROC AUC "
+        "with a 95% interval, accuracy at the current threshold and at the Youden-optimal one, "
+        "predicted vs observed share positive in probability bins, the best single description "
+        "and, with at least 20 labels of each class, a few-shot linear probe's cross-validated "
+        "AUC. Fewer than 10 labels of a class give a warning instead of numbers. Tables go to "
+        "the study's output folder (attribute_check*.csv).",
+    )
+    p.add_argument("study", type=Path, help="study file (.toml)")
+    p.add_argument(
+        "--labels",
+        type=Path,
+        required=True,
+        help="CSV with columns image, attribute, label: image is an image id, a path relative "
+        "to the images root, or a file path (relative to the CSV's folder); label is 1 when the "
+        "attribute's positive side applies, 0 when it does not",
+    )
+    p.add_argument(
+        "--save-threshold",
+        action="store_true",
+        help="save each checked attribute's Youden-optimal threshold; later runs call positives with it",
+    )
+    p.add_argument(
+        "--save-probe",
+        action="store_true",
+        help="save each attribute's linear probe (needs 20 labels per class); later runs score "
+        "that attribute with the probe and its own threshold instead of the prompt pair",
+    )
+    _add_encoder_options(p)
+    _add_attribute_option(p)
+    p.set_defaults(func=cmd_check)
 
     # --- report (explore/report/) ---------------------------------------------------
     p = sub.add_parser(
@@ -117,7 +179,7 @@ def _run(study_path: Path, args) -> int:
     from explore.run import run_study
     from explore.study import load_study
 
-    study = load_study(study_path)
+    study = _with_extra_attributes(load_study(study_path), args.attribute)
     summary = run_study(study, encoder_name=args.encoder, weights=args.weights, progress=not args.quiet)
     print(f"study: {summary.study}")
     print(f"encoder: {summary.encoder_id}")
@@ -140,6 +202,27 @@ def cmd_run(args) -> int:
 
 def cmd_demo(args) -> int:
     return _run(DEMO_STUDY, args)
+
+
+def cmd_check(args) -> int:
+    from explore.run import check_study
+    from explore.study import load_study
+
+    study = _with_extra_attributes(load_study(args.study), args.attribute)
+    results = check_study(
+        study,
+        args.labels,
+        encoder_name=args.encoder,
+        weights=args.weights,
+        save_threshold=args.save_threshold,
+        save_probe=args.save_probe,
+        progress=not args.quiet,
+    )
+    print(f"encoder: {results[0].encoder_id}")
+    for result in results:
+        print(result.describe())
+    print(f"tables: {study.output / 'attribute_check.csv'} (and _reliability, _descriptions)")
+    return 0
 
 
 # --- report (explore/report/) -------------------------------------------------------

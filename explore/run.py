@@ -127,6 +127,26 @@ def run_study(
     # Later stages are added here, in data-flow order (attributes, contexts,
     # compare, report). Each writes its tables with write_tables(out, ...).
 
+    # --- attributes (explore/attributes.py): zero-shot scores, shares, gaps ---
+    with timer("attributes"):
+        from explore import attributes
+
+        attribute_tables, attribute_notes = attributes.attribute_tables(
+            images,
+            embeddings.image_ids,
+            embeddings.joint,
+            embeddings.cluster,
+            study.attributes,
+            study.scoring,
+            encoder,
+            seed=study.seed,
+            saved_checks=read_saved_checks(out),
+        )
+        summary.tables += write_tables(out, attribute_tables)
+        summary.notes += [f"attributes: {note}" for note in attribute_notes]
+    # --- end attributes --------------------------------------------------------
+
+
     # --- compare (explore/compare.py): survey agreement, brand maps ---------
     # Needs this run's attribute_shares table; read back from the output folder
     # so this block does not depend on the attributes block's variable names.
@@ -190,3 +210,128 @@ class _StageTimer:
                 return False
 
         return _Timer()
+
+
+# --- check (explore/attributes.py): attributes against hand labels -----------
+
+#: In the output folder: what ``explore check --save-threshold/--save-probe`` stored,
+#: {attribute name: record}; later runs use it for those attributes.
+SAVED_CHECKS_FILE = "attribute_checks.json"
+
+
+def read_saved_checks(out: Path) -> dict:
+    """The saved checks of an output folder ({} when there are none)."""
+    path = Path(out) / SAVED_CHECKS_FILE
+    if not path.is_file():
+        return {}
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        from explore.study import StudyError
+
+        raise StudyError(f"{path}: not a valid saved-checks file ({exc}); delete it or run the check again")
+    return data if isinstance(data, dict) else {}
+
+
+def check_study(
+    study: Study,
+    labels_path: Path,
+    *,
+    encoder_name: str | None = None,
+    weights: Path | None = None,
+    save_threshold: bool = False,
+    save_probe: bool = False,
+    progress: bool = True,
+    log: Callable[[str], None] = print,
+) -> list:
+    """Check the study's attributes against hand labels (``explore check``).
+
+    Collects and embeds the study's images (through the cache, so a run before
+    makes this quick), reads the labels CSV (columns image, attribute, label),
+    checks every labelled attribute, writes the ``attribute_check`` tables
+    and, when asked, saves thresholds or linear probes for later runs.
+
+    Returns
+    -------
+    list of ``attributes.AttributeCheck``, one per labelled attribute.
+    """
+    from explore import attributes, collect, embed
+    from explore.encoders import load_encoder
+    from explore.study import StudyError
+
+    labels_path = Path(labels_path)
+    if not labels_path.is_file():
+        raise FileNotFoundError(f"{labels_path}: labels file not found")
+    try:
+        table = pd.read_csv(labels_path, dtype=str, keep_default_na=False)
+    except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as exc:
+        raise StudyError(f"{labels_path}: not a readable CSV file: {exc}") from exc
+
+    out = study.output
+    out.mkdir(parents=True, exist_ok=True)
+    images = collect.collect_study_images(study, progress=progress)
+    labels, warnings = attributes.read_labels(
+        table, images, [a.name for a in study.attributes], where=str(labels_path), base=labels_path.parent
+    )
+    for line in warnings:
+        log(line)
+    settings = study.encoder
+    encoder, notice = load_encoder(
+        encoder_name or settings.name,
+        model=settings.model,
+        pretrained=settings.pretrained,
+        weights=weights or settings.weights,
+    )
+    if notice:
+        log(notice)
+    embeddings, stats = embed.embed_table(
+        images, encoder, cache_dir=out / "cache", batch_size=settings.batch_size, progress=progress
+    )
+    log(stats.describe())
+    row_of = {image_id: i for i, image_id in enumerate(embeddings.image_ids)}
+
+    saved_all = read_saved_checks(out)
+    results, to_save = [], {}
+    for attribute in study.attributes:
+        mine = labels[labels["attribute"] == attribute.name]
+        if mine.empty:
+            continue
+        rows = [row_of[i] for i in mine["image_id"]]
+        vectors = attributes.attribute_vectors(attribute, study.scoring.templates, encoder.encode_texts)
+        saved = {k: v for k, v in (saved_all.get(attribute.name) or {}).items() if k != "probe"}
+        saved, note = attributes.usable_check(saved or None, encoder.id, attributes.prompts_digest(vectors))
+        if note:
+            log(f"attribute '{attribute.name}': {note}")
+        threshold, threshold_from = attributes.resolve_threshold(attribute, study.scoring, saved)
+        result = attributes.check_attribute(
+            attribute,
+            vectors,
+            mine["label"].to_numpy(),
+            embeddings.joint[rows],
+            embeddings.cluster[rows],
+            encoder,
+            threshold,
+            threshold_from,
+            seed=study.seed,
+        )
+        results.append(result)
+        record, said = attributes.saved_record(result, save_threshold=save_threshold, save_probe=save_probe)
+        if record is not None:
+            record["saved_at"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
+            record["labels_file"] = str(labels_path)
+            to_save[attribute.name] = record
+        if said:
+            log(said)
+    if not results:
+        raise StudyError(f"{labels_path}: no usable labels for any attribute of the study")
+    write_tables(out, attributes.checks_table(results))
+    if to_save:
+        saved_all.update(to_save)
+        path = out / SAVED_CHECKS_FILE
+        tmp = path.with_suffix(".json.tmp")
+        tmp.write_text(json.dumps(saved_all, indent=2), encoding="utf-8")
+        tmp.replace(path)
+    return results
+
+
+# --- end check -----------------------------------------------------------------

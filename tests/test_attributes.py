@@ -141,6 +141,11 @@ def test_roc_points_and_youden_agree_with_sklearn():
         threshold, j = A.youden_threshold(y, s)
         assert threshold == pytest.approx(th[k]) and j == pytest.approx(tpr[k] - fpr[k])
         assert A.accuracy_at(y, s, threshold) == pytest.approx(np.mean((s >= th[k]) == y))
+        # The midpoint variant sits between that score and the next lower one: same calls.
+        middle, j_mid = A.youden_threshold(y, s, midpoint=True)
+        below = s[s < th[k]]
+        assert j_mid == pytest.approx(j) and (below.size == 0 or below.max() < middle <= th[k])
+        assert np.array_equal(s >= middle, s >= th[k])
 
 
 def test_reliability_table_matches_sklearn_calibration_curve():
@@ -282,6 +287,17 @@ def test_attribute_tables_counts_shares_and_gaps():
     # Brand B has no lean: its interval should contain 0.
     assert not bool(gaps.loc["B", "significant"])
     print(shares[shares.level == "brand"][["brand", "source", "n", "share", "share_low", "share_high"]])
+
+    # A single brand x source cell is a plain percentile bootstrap of its mean probability.
+    # Reference: scipy.stats.bootstrap(method="percentile"); other resamples, so to Monte Carlo error.
+    from scipy.stats import bootstrap
+
+    cell = merged[(merged.brand == "A") & (merged.source == "consumer")].probability.to_numpy(np.float64)
+    ref = bootstrap((cell,), np.mean, n_resamples=5000, method="percentile", random_state=0).confidence_interval
+    row = shares[(shares.level == "brand") & (shares.brand == "A") & (shares.source == "consumer")].iloc[0]
+    spread = ref.high - ref.low
+    assert row.mean_low == pytest.approx(ref.low, abs=0.1 * spread)
+    assert row.mean_high == pytest.approx(ref.high, abs=0.1 * spread)
 
     # Seeded: the same study seed gives the same bootstrap bounds, another seed others.
     again, _ = A.attribute_tables(images, ids, joint, joint, [attr], scoring, enc, seed=5)
@@ -455,3 +471,87 @@ def test_adding_a_duplicate_attribute_is_refused():
     existing = [Attribute("sunny", ["bright"], ["dull"])]
     with pytest.raises(StudyError, match="attribute 'sunny' is defined twice"):
         A.add_attributes(existing, [A.parse_attribute_spec("sunny: warm / cold")], "command line")
+
+
+# --------------------------------------------------------------------------
+# The check command end to end, bundled encoder, on a small tree of sample photos
+
+
+@pytest.fixture(scope="module")
+def labelled_tree(tmp_path_factory):
+    """24 variants of scikit-image's cat photo (chelsea) and 24 of non-animal photos
+    (coffee, rocket, grass, brick), split over two brands, with a labels CSV."""
+    from PIL import Image
+    from skimage import data
+
+    root = tmp_path_factory.mktemp("labelled")
+    rng = np.random.default_rng(0)
+    others = [data.coffee(), data.rocket(), np.stack([data.grass()] * 3, -1), np.stack([data.brick()] * 3, -1)]
+    rows = []
+    for i in range(48):
+        animal = i % 2 == 0
+        brand, source = ("Alpha", "Beta")[i % 4 // 2], ("consumer", "owned")[i % 8 // 4]
+        base = data.chelsea() if animal else others[(i // 2) % 4]
+        h, w = base.shape[:2]
+        top, left = rng.integers(0, h // 6), rng.integers(0, w // 6)
+        crop = base[top:top + h * 5 // 6, left:left + w * 5 // 6].astype(float)
+        crop = np.clip(crop * rng.uniform(0.8, 1.15) + rng.normal(0, 6, crop.shape), 0, 255).astype(np.uint8)
+        if rng.random() < 0.5:
+            crop = crop[:, ::-1]
+        folder = root / "images" / brand / source
+        folder.mkdir(parents=True, exist_ok=True)
+        name = f"photo_{i:02d}.jpg"
+        Image.fromarray(np.ascontiguousarray(crop)).save(folder / name, quality=90)
+        rows.append((f"{brand}/{source}/{name}", "animal", int(animal)))
+    pd.DataFrame(rows, columns=["image", "attribute", "label"]).to_csv(root / "labels.csv", index=False)
+    (root / "study.toml").write_text(
+        'name = "labelled"\noutput = "out"\n[images]\nroot = "images"\n'
+        '[scoring]\nbootstrap_samples = 100\n'
+        '[[attribute]]\nname = "animal"\npositive = ["an animal", "a pet cat"]\n'
+        'negative = ["an object", "a landscape"]\n',
+        encoding="utf-8",
+    )
+    return root
+
+
+def test_check_command_reports_saves_and_reuses(labelled_tree, capsys):
+    import json
+
+    from explore.cli import main
+
+    study, labels = str(labelled_tree / "study.toml"), str(labelled_tree / "labels.csv")
+    code = main(["--quiet", "check", study, "--labels", labels, "--encoder", "bundled", "--save-probe",
+                 "--attribute", "drink: a cup of coffee; a hot drink / an animal; a landscape"])
+    printed = capsys.readouterr().out
+    print(printed)
+    assert code == 0
+    assert "attribute 'animal': 48 labelled images (24 positive, 24 negative)" in printed
+    summary = pd.read_csv(labelled_tree / "out" / "attribute_check.csv")
+    row = summary.set_index("attribute").loc["animal"]
+    # A cat photo against a cup, a rocket, grass and bricks: ImageNet's classifier knows cats,
+    # so ConSE + the prompt pair must separate them far better than chance (0.5).
+    assert row.auc > 0.9 and bool(row.better_than_chance)
+    assert row.probe_auc > 0.9  # 24 per class: the probe was fitted
+    assert "drink" not in set(summary.attribute)  # no labels for the ad-hoc attribute: not checked
+    saved = json.loads((labelled_tree / "out" / "attribute_checks.json").read_text())
+    assert saved["animal"]["encoder_id"].startswith("bundled") and len(saved["animal"]["probe"]["coef"]) == 1280
+
+    # A second check starts from the saved zero-shot threshold, not the study default.
+    assert main(["--quiet", "check", study, "--labels", labels, "--encoder", "bundled"]) == 0
+    again = pd.read_csv(labelled_tree / "out" / "attribute_check.csv").iloc[0]
+    assert again.threshold_from.startswith("check") and again.threshold == pytest.approx(row.best_threshold)
+
+
+def test_check_command_refuses_bad_inputs(labelled_tree, tmp_path, capsys):
+    from explore.cli import main
+
+    study = str(labelled_tree / "study.toml")
+    bad = tmp_path / "bad.csv"
+    bad.write_text("image,attribute,label\nAlpha/consumer/photo_00.jpg,glamorous,1\n", encoding="utf-8")
+    assert main(["--quiet", "check", study, "--labels", str(bad), "--encoder", "bundled"]) == 2
+    assert "row 2: attribute 'glamorous' is not in the study" in capsys.readouterr().err
+    # The one-line syntax is validated before any model loads; the message names the attribute.
+    assert main(["--quiet", "run", study, "--attribute", "sunny: bright"]) == 2
+    assert "--attribute 'sunny': expected exactly one '/'" in capsys.readouterr().err
+    assert main(["--quiet", "run", study, "--attribute", "animal: furry / bald"]) == 2
+    assert "attribute 'animal' is defined twice" in capsys.readouterr().err
