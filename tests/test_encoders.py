@@ -19,6 +19,7 @@ import os
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -242,6 +243,37 @@ def test_auto_takes_clip_when_weights_are_given(random_clip, clean_home):
     encoder, notice = load_encoder("auto", weights=path)
     assert encoder.family == "clip"
     assert "clip" in notice and str(path) in notice
+
+
+def _fake_hub_cache(hub: Path, repo_id: str, files: dict[str, Path]) -> Path:
+    """Lay files out the way huggingface_hub caches a repo (models--org--name/
+    refs/main + snapshots/<commit>/FILE; huggingface_hub docs, "Understand caching")."""
+    repo = hub / ("models--" + repo_id.replace("/", "--"))
+    snapshot = repo / "snapshots" / "0123456789abcdef"
+    snapshot.mkdir(parents=True)
+    (repo / "refs").mkdir()
+    (repo / "refs" / "main").write_text("0123456789abcdef")
+    for name, target in files.items():
+        (snapshot / name).symlink_to(target)
+    return snapshot
+
+
+def test_auto_finds_tag_weights_in_the_hub_cache(random_clip, clean_home, monkeypatch):
+    # A default-tag checkpoint already in the Hugging Face cache is used without
+    # any hub call: the endpoint is unresolvable (RFC 2606 ".invalid").
+    model, preprocess, path = random_clip
+    monkeypatch.setenv("HF_ENDPOINT", "https://hub.example.invalid")
+    hub = clean_home / ".cache" / "huggingface" / "hub"
+    # open_clip's pretrained table: ViT-B-32 laion2b_s34b_b79k -> hf_hub 'laion/CLIP-ViT-B-32-laion2B-s34B-b79K/'
+    snapshot = _fake_hub_cache(hub, "laion/CLIP-ViT-B-32-laion2B-s34B-b79K", {"open_clip_pytorch_model.bin": path})
+    encoder, notice = load_encoder("auto")
+    assert encoder.family == "clip" and str(snapshot) in notice
+    assert encoder.id.endswith("ViT-B-32-laion2b_s34b_b79k")
+    batch = torch.stack([preprocess(im) for im in sample_photos()])
+    with torch.no_grad():
+        reference = model.encode_image(batch)
+        reference = (reference / reference.norm(dim=-1, keepdim=True)).numpy()
+    np.testing.assert_allclose(encoder.encode_images(batch)["joint"], reference, atol=1e-5)
 
 
 # ---------------------------------------------------------------------------

@@ -18,6 +18,7 @@ embedding, the way CLIP zero-shot classification uses it (Radford et al., 2021).
 from __future__ import annotations
 
 import ast
+import hashlib
 import importlib.util
 import os
 import socket
@@ -219,6 +220,29 @@ def find_local_weights(model: str, pretrained: str | None, weights: str | Path |
         return lookup
     lookup.looked.append(f"{WEIGHTS_ENV} (not set)")
 
+    if model.startswith("local-dir:"):
+        folder = Path(model[len("local-dir:") :]).expanduser()
+        lookup.looked.append(f"{folder}/open_clip_config.json")
+        if (folder / "open_clip_config.json").is_file():
+            lookup.path, lookup.source = folder.resolve(), "dir"
+        else:
+            lookup.error = f"folder {folder} has no open_clip_config.json"
+        return lookup
+    if model.startswith("hf-hub:"):
+        repo_id = model[len("hf-hub:") :]
+        config = _hf_cached_file(repo_id, "open_clip_config.json")
+        if config is not None:
+            weights_found = [
+                _hf_cached_file(repo_id, name)
+                for name in (_HF_SAFE_WEIGHTS_NAME, _HF_WEIGHTS_NAME)
+            ]
+            if any(w is not None and w.parent == config.parent for w in weights_found):
+                # the cached snapshot folder loads as local-dir:, with no hub call
+                lookup.path, lookup.source = config.parent, "dir"
+                return lookup
+        lookup.looked.append(f"Hugging Face cache {_hf_cache_dir()} (repo {repo_id})")
+        return lookup
+
     if not pretrained:
         return lookup
     if os.path.sep in pretrained or pretrained.endswith((".pt", ".pth", ".bin", ".safetensors", ".npz")):
@@ -361,10 +385,13 @@ class ClipEncoder:
         import torch
 
         kwargs = {}
-        if lookup.source == "file":
+        name = model  # what open_clip is asked to build
+        if lookup.source == "dir":
+            name, source = f"local-dir:{lookup.path}", None
+        elif lookup.source == "file":
             source = str(lookup.path)
         elif download:
-            source = pretrained  # open_clip downloads into its cache
+            source = None if ":" in model else pretrained  # open_clip downloads into its cache
         else:
             # Load the cached file directly (no hub call), with the tag's preprocessing.
             cfg = open_clip.get_pretrained_cfg(model, pretrained) or lookup.cfg
@@ -377,7 +404,7 @@ class ClipEncoder:
                 "force_quick_gelu": bool(cfg.get("quick_gelu", False)) and not model.endswith("-quickgelu"),
             }
         try:
-            net, _, preprocess = open_clip.create_model_and_transforms(model, pretrained=source, device="cpu", **kwargs)
+            net, _, preprocess = open_clip.create_model_and_transforms(name, pretrained=source, device="cpu", **kwargs)
         except EncoderUnavailable:
             raise
         except Exception as exc:  # bad file, wrong architecture, failed download
@@ -390,7 +417,7 @@ class ClipEncoder:
         self.pretrained = None if lookup.source == "file" else pretrained
         self.weights = lookup.path if lookup.path is not None else None
         self._preprocess = preprocess
-        self.tokenizer = open_clip.get_tokenizer(model)
+        self.tokenizer = open_clip.get_tokenizer(name)
         size = getattr(net.visual, "image_size", 224)
         self.input_size = int(size[0] if isinstance(size, (tuple, list)) else size)
         with torch.no_grad():
@@ -399,9 +426,17 @@ class ClipEncoder:
             self.logit_bias = float(bias) if bias is not None else 0.0
         if lookup.source == "file":
             tag = "file-" + _file_digest(lookup.path)[:12]
+        elif lookup.source == "dir":
+            digest = hashlib.sha256()
+            for item in sorted(lookup.path.iterdir()):
+                if item.is_file() and item.suffix in (".json", ".safetensors", ".bin", ".pth"):
+                    digest.update(item.name.encode() + _file_digest(item).encode())
+            tag = "dir-" + digest.hexdigest()[:12]
         else:
             tag = str(pretrained)
-        self.id = f"clip-v{CLIP_VERSION}-{model}-{tag}"
+        # the weights digest identifies a folder, not its location
+        label = "local-dir" if model.startswith("local-dir:") else model.replace(":", "-").replace("/", "-")
+        self.id = f"clip-v{CLIP_VERSION}-{label}-{tag}"
         self.weights_source = str(lookup.path) if lookup.path else f"downloaded ({pretrained})"
 
     def preprocess(self, image: "Image.Image") -> "torch.Tensor":
