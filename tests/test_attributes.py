@@ -233,6 +233,44 @@ def test_probabilities_equal_open_clip_direct_computation(random_open_clip):
     assert not np.allclose(ours, ours[0])  # the images really differ
 
 
+def test_clip_encoder_scores_equal_open_clip_direct_computation(random_open_clip, tmp_path):
+    """The whole path: our clip encoder loaded from a weights file, then attribute_tables."""
+    import torch
+    from PIL import Image
+
+    from explore.encoders import load_encoder
+
+    model, preprocess, tokenizer = random_open_clip
+    weights = tmp_path / "random-vit-s-32.pt"
+    torch.save(model.state_dict(), weights)
+    encoder, _ = load_encoder("clip", model="ViT-S-32", weights=weights)
+    assert encoder.logit_scale == pytest.approx(float(model.logit_scale.exp().item()))
+    assert encoder.logit_bias == 0.0
+
+    rng = np.random.default_rng(5)
+    photos = [Image.fromarray(rng.integers(0, 256, (96, 128, 3), dtype=np.uint8)) for _ in range(4)]
+    attr = Attribute("festive", ["a party with balloons"], ["a quiet empty office", "a grey wall"])
+    templates = ["a photo that feels {}", "a picture that looks {}"]
+
+    # Reference: open_clip's own preprocess / encode_image / encode_text, normalised, sides
+    # ensembled (Radford et al. 2021), logits = exp(logit_scale) * cosines, softmax.
+    with torch.no_grad():
+        img = model.encode_image(torch.stack([preprocess(p) for p in photos]))
+        img = img / img.norm(dim=-1, keepdim=True)
+        sides = []
+        for texts in (attr.positive, attr.negative):
+            t = model.encode_text(tokenizer([tpl.format(d) for d in texts for tpl in templates]))
+            t = t / t.norm(dim=-1, keepdim=True)
+            sides.append(t.mean(dim=0) / t.mean(dim=0).norm())
+        direct = (model.logit_scale.exp() * img @ torch.stack(sides, 1)).softmax(dim=-1)[:, 0].numpy()
+
+    joint = encoder.encode_images(torch.stack([encoder.preprocess(p) for p in photos]))["joint"]
+    images = pd.DataFrame({"image_id": list("abcd"), "brand": "B", "category": "c", "source": "consumer", "status": "ok"})
+    scoring = ScoringSettings(templates=templates, bootstrap_samples=10)
+    tables, _ = A.attribute_tables(images, list("abcd"), joint, joint, [attr], scoring, encoder)
+    np.testing.assert_allclose(tables["image_attributes"].probability, direct, atol=1e-5)
+
+
 # --------------------------------------------------------------------------
 # Brand tables
 
