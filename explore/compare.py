@@ -372,6 +372,9 @@ def pair_agreement(x, y, *, min_brands: int = MIN_BRANDS) -> dict:
         pearson_r=nan, pearson_p=nan, note="",
     )
     n = out["n_brands"]
+    if n == 0:
+        out["note"] = "no brand has both values"
+        return out
     if n < min_brands:
         out["note"] = f"too few brands ({n}; statistics need at least {min_brands})"
         return out
@@ -942,7 +945,8 @@ def summarise(tables: dict[str, pd.DataFrame], *, top: int = 2) -> list[str]:
 
             words = f"agreement {_METRIC_WORDS[a]} vs {_METRIC_WORDS[b]} (brand pairs ranked alike)"
             if per["concordant_share"].nunique() == 1:
-                lines.append(f"{words}: the same for every attribute, {fmt(per.iloc[0]).split(' ', 1)[1]}")
+                alike = "" if len(per) == 1 else "alike for every attribute: "
+                lines.append(f"{words}: {alike}{', '.join(fmt(r) for r in per.head(3).itertuples())}")
                 continue
             hi, lo = per["concordant_share"].max(), per["concordant_share"].min()
             best = [fmt(r) for r in per[per["concordant_share"] > lo].head(top).itertuples()]
@@ -1027,7 +1031,8 @@ def compare_study(
 
     metrics = brand_metrics(attribute_shares, survey_table if survey is not None else None, value=value)
     agreement = agreement_table(metrics)
-    too_few = sorted(set(agreement.loc[agreement["note"].str.startswith("too few"), "category"]))
+    brands_per_category = metrics.groupby("category")["brand"].nunique()
+    too_few = sorted(brands_per_category[brands_per_category < MIN_BRANDS].index)
     if too_few:
         notes.append(f"agreement: too few brands for statistics in {', '.join(too_few)} (counts only)")
     brand_map, loadings, map_notes = brand_maps(metrics)

@@ -148,12 +148,10 @@ def run_study(
 
 
     # --- compare (explore/compare.py): survey agreement, brand maps ---------
-    # Needs this run's attribute_shares table; read back from the output folder
-    # so this block does not depend on the attributes block's variable names.
     if "attribute_shares" in summary.tables:
         with timer("compare"):
             compare_tables, compare_notes = compare.compare_study(
-                pd.read_parquet(out / "attribute_shares.parquet"),
+                attribute_tables["attribute_shares"],
                 survey=survey,
                 brand_categories={b: study.category_of(b) for b in study.brands},
                 images=images,
