@@ -72,14 +72,35 @@ class ScoringSettings:
 class ContextSettings:
     """Settings of context discovery (UMAP + HDBSCAN) and brand x context tests.
 
-    ``None`` for min_cluster_size or neighbours means: scale with the number of
-    images (the values used are recorded with the results).
+    ``None`` for min_cluster_size, min_samples or neighbours means: scale with
+    the number of images n (the values used are recorded with the results in
+    the ``contexts`` table; see ``explore.contexts.resolve_parameters``):
+    neighbours = round(sqrt(n) / 2) within [15, 50]; min_cluster_size = 0.5 %
+    of n within [10, 500]; min_samples = min(min_cluster_size, 10).
+
+    cluster_dimensions: UMAP dimensions HDBSCAN clusters in (default 10).
+    fit_sample: above this many images UMAP is fitted on a seeded sample of
+        this size and every other image is placed from its nearest sampled
+        images (default 20000).
+    vocabulary, extra_phrases, replace_vocabulary: the phrases contexts are
+        named from (default: explore/data/context_vocabulary.txt, extended by
+        the file and the extra phrases; replaced when replace_vocabulary).
+    exemplars: images listed per context, nearest its centre (default 6).
+    fdr: Benjamini-Hochberg false-discovery level (default 0.05).
+    min_index: smallest index that counts as an over-index (default 120).
+    min_count: fewest images of the brand in the context (default 5).
+    rare_category_share: below this category share a context is "rare" for
+        the category, so a brand over-indexing there is unexpected (0.05).
+    dominance_ratio: another category "dominates" a context when its share
+        is the highest and at least this many times the brand's category
+        share (default 2.0).
     """
 
     min_cluster_size: int | None = None
     min_samples: int | None = None
     neighbours: int | None = None
     cluster_dimensions: int = 10
+    fit_sample: int = 20000
     vocabulary: Path | None = None
     extra_phrases: list[str] = field(default_factory=list)
     replace_vocabulary: bool = False
@@ -88,6 +109,7 @@ class ContextSettings:
     min_index: float = 120.0
     min_count: int = 5
     rare_category_share: float = 0.05
+    dominance_ratio: float = 2.0
 
 
 @dataclass
@@ -221,6 +243,7 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
     check_attributes(attributes, where)
 
     contexts = _section(raw, "contexts", ContextSettings, where, base)
+    check_context_settings(contexts, where)
     survey = _section(raw, "survey", SurveySettings, where, base)
     report = _section(raw, "report", ReportSettings, where, base)
 
@@ -238,6 +261,26 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
         survey=survey,
         report=report,
     )
+
+
+def check_context_settings(settings: ContextSettings, where: str) -> None:
+    """Refuse context settings outside their meaningful range, naming the key."""
+    minimum = {
+        "min_cluster_size": 2, "min_samples": 1, "neighbours": 2, "cluster_dimensions": 2,
+        "fit_sample": 100, "exemplars": 0, "min_count": 0,
+    }
+    for key, low in minimum.items():
+        value = getattr(settings, key)
+        if value is not None and value < low:
+            raise StudyError(f"{where}: key 'contexts.{key}' is {value}; it must be at least {low}")
+    if not 0.0 < settings.fdr < 1.0:
+        raise StudyError(f"{where}: key 'contexts.fdr' must lie strictly between 0 and 1")
+    if not 0.0 <= settings.rare_category_share <= 1.0:
+        raise StudyError(f"{where}: key 'contexts.rare_category_share' must lie between 0 and 1")
+    if settings.min_index < 0 or settings.dominance_ratio < 1.0:
+        raise StudyError(
+            f"{where}: keys 'contexts.min_index' (>= 0) and 'contexts.dominance_ratio' (>= 1) are out of range"
+        )
 
 
 def check_template(template: str, where: str) -> None:

@@ -1,0 +1,813 @@
+"""Usage contexts: find them in the photos, name them, and index brands on them.
+
+A *context* is a cluster of images that show one usage situation (a campfire,
+a desk, a beach ...). Contexts are found from the photos themselves, not from a
+list the analyst already had:
+
+1. UMAP (McInnes, Healy and Melville, 2018; cosine metric, seeded) reduces the
+   cluster vectors to a few dimensions for clustering and, separately, to two
+   dimensions for the map;
+2. HDBSCAN (Campello, Moulavi and Sander, 2013; the ``hdbscan`` package)
+   clusters the reduced points. Images it leaves as noise stay in every table
+   as context ``-1`` "unassigned", with their count reported;
+3. each context is named zero-shot with the vocabulary phrase that is most
+   *distinctive* for it (similar to its images, dissimilar to the other
+   contexts), so two contexts never share one generic name;
+4. per brand, source and context: count, share, index = 100 x brand share /
+   category share (100 = parity; common marketing practice), a two-sided
+   Fisher exact test of the brand against the rest of its category and
+   Benjamini-Hochberg false-discovery control across the table;
+5. findings: signature contexts, unexpected contexts and contexts whose share
+   differs between a brand's consumer and owned photos.
+
+Reproducibility versus speed: UMAP runs single-threaded when it is seeded
+(umap-learn turns parallel layout off for a fixed ``random_state``). We keep
+the seed, because the same study and seed must give the same contexts, and buy
+the speed back in two ways: the nearest-neighbour graph is computed once and
+shared by both layouts (exact, by matrix products), and above ``fit_sample``
+images UMAP is fitted on a seeded sample and every other image is placed from
+its nearest sampled neighbours, as ``UMAP.transform`` starts (see
+``place_by_neighbours``).
+
+Everything here works on arrays and DataFrames; ``umap`` and ``hdbscan`` are
+imported inside the functions that use them.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from explore.study import ContextSettings
+
+UNASSIGNED_ID = -1
+UNASSIGNED = "unassigned"
+SOURCES = ("consumer", "owned", "all")
+DEFAULT_VOCABULARY = Path(__file__).resolve().parent / "data" / "context_vocabulary.txt"
+
+
+# --------------------------------------------------------------------------
+# Parameters that scale with the number of images
+
+
+def resolve_parameters(n: int, settings: ContextSettings, seed: int = 0) -> dict:
+    """The clustering parameters actually used for ``n`` images.
+
+    ``None`` in the settings means "scale with n":
+
+    - neighbours (UMAP ``n_neighbors``): round(sqrt(n) / 2), kept within
+      [15, 50]. 15 is UMAP's own default; larger neighbourhoods favour the
+      global structure that clustering needs (UMAP documentation, "Using UMAP
+      for Clustering"; the square-root rule is our own rule of thumb);
+    - min_cluster_size (HDBSCAN): 0.5 % of the images, kept within [10, 500],
+      so a context is never a handful of near-duplicates and, at 100,000
+      images, a context still needs only 500 of them;
+    - min_samples (HDBSCAN): min(min_cluster_size, 10). HDBSCAN's own default
+      (= min_cluster_size) calls many border images noise; a smaller value
+      keeps more of them in their context.
+
+    Parameters
+    ----------
+    n : number of images to cluster.
+    settings : the study's context settings (explicit values win).
+    seed : the study seed, recorded with the parameters.
+
+    Returns
+    -------
+    dict with neighbours, min_cluster_size, min_samples, cluster_dimensions,
+    fit_sample, umap_min_dist_cluster, umap_min_dist_map, metric, seed, n.
+    """
+    if n < 3:
+        raise ValueError(f"contexts: need at least 3 images to find contexts, got {n}")
+    neighbours = settings.neighbours
+    if neighbours is None:
+        neighbours = int(np.clip(round(np.sqrt(n) / 2), 15, 50))
+    neighbours = int(max(2, min(neighbours, n - 1)))
+    min_cluster_size = settings.min_cluster_size
+    if min_cluster_size is None:
+        min_cluster_size = int(np.clip(round(0.005 * n), 10, 500))
+    min_cluster_size = int(max(2, min(min_cluster_size, n)))
+    min_samples = settings.min_samples
+    if min_samples is None:
+        min_samples = min(min_cluster_size, 10)
+    min_samples = int(max(1, min(min_samples, n - 1)))
+    dims = int(max(2, min(settings.cluster_dimensions, n - 2)))
+    return {
+        "n": int(n),
+        "seed": int(seed),
+        "metric": "cosine",
+        "neighbours": neighbours,
+        "cluster_dimensions": dims,
+        "umap_min_dist_cluster": 0.0,
+        "umap_min_dist_map": 0.1,
+        "fit_sample": int(settings.fit_sample),
+        "min_cluster_size": min_cluster_size,
+        "min_samples": min_samples,
+        "cluster_selection_method": "eom",
+    }
+
+
+# --------------------------------------------------------------------------
+# Finding contexts
+
+
+@dataclass
+class ContextFit:
+    """Contexts found in one set of vectors.
+
+    labels : (n,) int, context id per image, 1..K by decreasing size, -1 = unassigned.
+    membership : (n,) float, HDBSCAN membership probability (0 for unassigned).
+    points : (n, d) float32, the UMAP points HDBSCAN clustered.
+    map_xy : (n, 2) float32, the 2-D UMAP map.
+    parameters : the values used (see ``resolve_parameters``).
+    """
+
+    labels: np.ndarray
+    membership: np.ndarray
+    points: np.ndarray
+    map_xy: np.ndarray
+    parameters: dict = field(default_factory=dict)
+
+    @property
+    def n_contexts(self) -> int:
+        return int(self.labels.max()) if (self.labels > 0).any() else 0
+
+    @property
+    def n_unassigned(self) -> int:
+        return int((self.labels == UNASSIGNED_ID).sum())
+
+
+def exact_neighbours(
+    vectors: np.ndarray, k: int, base: np.ndarray | None = None, chunk: int = 1024
+) -> tuple[np.ndarray, np.ndarray]:
+    """Exact k nearest neighbours by cosine distance, by matrix products.
+
+    The vectors are L2-normalised, so cosine similarity is a matrix product,
+    done in row chunks to bound memory. Deterministic, and for tens of
+    thousands of images faster than approximate search (plus its JIT
+    compilation) on a laptop.
+
+    Parameters
+    ----------
+    vectors : (n, d) query vectors.
+    k : neighbours per query.
+    base : (m, d) vectors searched; ``None`` means ``vectors`` themselves, and
+        then every point is its own first neighbour (as UMAP expects).
+
+    Returns
+    -------
+    indices : (n, k) int64 rows of ``base``; distances : (n, k) float32,
+    1 - cosine, ascending (ties by row number).
+    """
+    x = _normalise(vectors)
+    b = x if base is None else _normalise(base)
+    n = len(x)
+    indices = np.empty((n, k), dtype=np.int64)
+    distances = np.empty((n, k), dtype=np.float32)
+    for start in range(0, n, chunk):
+        sim = x[start : start + chunk] @ b.T
+        if base is None:
+            rows = np.arange(len(sim))
+            sim[rows, start + rows] = np.inf  # self first, even among exact duplicates
+        part = np.argpartition(-sim, k - 1, axis=1)[:, :k]
+        part_sim = np.take_along_axis(sim, part, axis=1)
+        order = np.lexsort((part, -part_sim), axis=1)
+        indices[start : start + chunk] = np.take_along_axis(part, order, axis=1)
+        best = np.take_along_axis(part_sim, order, axis=1)
+        if base is None:
+            best[:, 0] = 1.0
+        distances[start : start + chunk] = np.clip(1.0 - best, 0.0, 2.0)
+    return indices, distances
+
+
+def place_by_neighbours(
+    indices: np.ndarray, distances: np.ndarray, embedding: np.ndarray, k: int
+) -> np.ndarray:
+    """Place new points at the weighted mean of their fitted neighbours' UMAP points.
+
+    The weights are UMAP's own fuzzy membership strengths,
+    exp(-(d - rho) / sigma) with rho and sigma from ``umap.umap_.smooth_knn_dist``,
+    and the weighted mean is how ``UMAP.transform`` initialises new points
+    (``umap.umap_.init_transform``). We stop there: the refinement epochs of
+    ``transform`` cost minutes at 100,000 images and hardly move points
+    between clusters.
+    """
+    from umap.umap_ import smooth_knn_dist
+
+    d = distances.astype(np.float32)
+    sigmas, rhos = smooth_knn_dist(d, float(k), local_connectivity=1.0)
+    weights = np.exp(-np.maximum(d - rhos[:, None], 0.0) / sigmas[:, None])
+    weights /= weights.sum(axis=1, keepdims=True)
+    return np.einsum("nk,nkd->nd", weights, embedding[indices]).astype(np.float32)
+
+
+def reduce_with_umap(vectors: np.ndarray, parameters: dict) -> tuple[np.ndarray, np.ndarray]:
+    """UMAP points for clustering (``cluster_dimensions``-D) and for the map (2-D).
+
+    The exact neighbour graph is computed once and shared by both layouts.
+    Above ``fit_sample`` images both layouts are fitted on a seeded sample of
+    ``fit_sample`` images and every other image is placed from its
+    ``neighbours`` nearest sampled images (``place_by_neighbours``).
+
+    Returns
+    -------
+    points : (n, cluster_dimensions) float32; map_xy : (n, 2) float32.
+    """
+    import umap
+
+    x = _normalise(vectors)
+    n = len(x)
+    k = parameters["neighbours"]
+    seed = parameters["seed"]
+    sample = parameters["fit_sample"]
+    if n <= sample:
+        fit_rows = np.arange(n)
+    else:
+        rng = np.random.default_rng(seed)
+        fit_rows = np.sort(rng.choice(n, size=sample, replace=False))
+    rest = np.setdiff1d(np.arange(n), fit_rows)
+    knn = exact_neighbours(x[fit_rows], k) + (None,)
+    rest_knn = exact_neighbours(x[rest], k, base=x[fit_rows]) if len(rest) else None
+    results = []
+    for dims, min_dist in (
+        (parameters["cluster_dimensions"], parameters["umap_min_dist_cluster"]),
+        (2, parameters["umap_min_dist_map"]),
+    ):
+        reducer = umap.UMAP(
+            n_neighbors=k,
+            n_components=dims,
+            min_dist=min_dist,
+            metric="cosine",
+            random_state=seed,
+            precomputed_knn=knn,
+            low_memory=True,
+        )
+        out = np.empty((n, dims), dtype=np.float32)
+        with warnings.catch_warnings():
+            # "n_jobs overridden by setting random_state" and "no search index":
+            # both expected, see the module docstring.
+            warnings.simplefilter("ignore")
+            out[fit_rows] = reducer.fit_transform(x[fit_rows])
+        if rest_knn is not None:
+            out[rest] = place_by_neighbours(rest_knn[0], rest_knn[1], out[fit_rows], k)
+        results.append(out)
+    return results[0], results[1]
+
+
+def cluster_points(points: np.ndarray, parameters: dict) -> tuple[np.ndarray, np.ndarray]:
+    """HDBSCAN labels (1..K by decreasing size, -1 = noise) and membership probabilities."""
+    import hdbscan
+
+    model = hdbscan.HDBSCAN(
+        min_cluster_size=parameters["min_cluster_size"],
+        min_samples=parameters["min_samples"],
+        cluster_selection_method=parameters["cluster_selection_method"],
+        core_dist_n_jobs=1,
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        raw = model.fit_predict(np.asarray(points, dtype=np.float64))
+    membership = np.asarray(model.probabilities_, dtype=np.float64)
+    return relabel_by_size(raw), np.where(raw < 0, 0.0, membership)
+
+
+def relabel_by_size(raw: np.ndarray) -> np.ndarray:
+    """Renumber cluster labels 1..K by decreasing size (ties: first row first); -1 stays."""
+    raw = np.asarray(raw)
+    labels = np.full(len(raw), UNASSIGNED_ID, dtype=np.int64)
+    found = [c for c in np.unique(raw) if c >= 0]
+    first = {c: int(np.argmax(raw == c)) for c in found}
+    size = {c: int((raw == c).sum()) for c in found}
+    for new, c in enumerate(sorted(found, key=lambda c: (-size[c], first[c])), start=1):
+        labels[raw == c] = new
+    return labels
+
+
+def find_contexts(vectors: np.ndarray, settings: ContextSettings, seed: int = 0) -> ContextFit:
+    """Find usage contexts in L2-normalised cluster vectors (UMAP, then HDBSCAN).
+
+    Parameters
+    ----------
+    vectors : (n, d) cluster vectors, one row per usable image.
+    settings : the study's context settings.
+    seed : the study seed (UMAP random_state and the fit sample).
+
+    Returns
+    -------
+    ContextFit
+    """
+    vectors = np.asarray(vectors, dtype=np.float32)
+    if vectors.ndim != 2:
+        raise ValueError(f"contexts: vectors must be a 2-D array, got shape {vectors.shape}")
+    if not np.isfinite(vectors).all():
+        raise ValueError("contexts: vectors contain NaN or infinite values")
+    parameters = resolve_parameters(len(vectors), settings, seed)
+    points, map_xy = reduce_with_umap(vectors, parameters)
+    labels, membership = cluster_points(points, parameters)
+    fit = ContextFit(labels, membership, points, map_xy, parameters)
+    parameters["contexts_found"] = fit.n_contexts
+    parameters["unassigned"] = fit.n_unassigned
+    return fit
+
+
+# --------------------------------------------------------------------------
+# Naming contexts
+
+
+def load_vocabulary(settings: ContextSettings) -> list[str]:
+    """The phrases contexts are named from: the default list, a study file, extras.
+
+    ``vocabulary`` (a text file, one phrase a line, ``#`` comments) is added to
+    the default list, or replaces it when ``replace_vocabulary`` is true;
+    ``extra_phrases`` are always added. Duplicates are dropped, order kept.
+    """
+    phrases: list[str] = []
+    if not settings.replace_vocabulary:
+        phrases += _read_phrases(DEFAULT_VOCABULARY)
+    if settings.vocabulary is not None:
+        phrases += _read_phrases(Path(settings.vocabulary))
+    elif settings.replace_vocabulary and not settings.extra_phrases:
+        raise ValueError(
+            "contexts: replace_vocabulary is true but neither 'contexts.vocabulary' "
+            "nor 'contexts.extra_phrases' gives any phrase"
+        )
+    phrases += [p.strip() for p in settings.extra_phrases if p.strip()]
+    unique = list(dict.fromkeys(phrases))
+    if not unique:
+        raise ValueError("contexts: the context vocabulary is empty")
+    return unique
+
+
+def _read_phrases(path: Path) -> list[str]:
+    if not path.is_file():
+        raise ValueError(f"contexts: vocabulary file {path} not found")
+    lines = path.read_text(encoding="utf-8").splitlines()
+    return [s.strip() for s in lines if s.strip() and not s.strip().startswith("#")]
+
+
+def distinctiveness(joint: np.ndarray, labels: np.ndarray, phrase_vectors: np.ndarray) -> np.ndarray:
+    """Distinctiveness of each phrase for each context: (K, m).
+
+    Similarities (cosine) of every image to every phrase are standardised per
+    phrase over all images, which removes phrases that are close to every
+    image. A context's affinity to a phrase is the mean standardised
+    similarity of its images; its distinctiveness is that affinity minus the
+    highest affinity of any *other* context. A phrase can therefore score
+    above zero for at most one context. With a single context, the affinity
+    itself is used (it is already relative to all images).
+    """
+    sims = _normalise(joint) @ _normalise(phrase_vectors).T
+    sims = (sims - sims.mean(axis=0)) / (sims.std(axis=0) + 1e-12)
+    ids = np.arange(1, int(labels.max()) + 1) if (labels > 0).any() else np.array([], int)
+    affinity = np.stack([sims[labels == c].mean(axis=0) for c in ids]) if len(ids) else np.zeros((0, sims.shape[1]))
+    if len(ids) <= 1:
+        return affinity
+    score = np.empty_like(affinity)
+    for i in range(len(ids)):
+        others = np.delete(affinity, i, axis=0)
+        score[i] = affinity[i] - others.max(axis=0)
+    return score
+
+
+def name_contexts(
+    joint: np.ndarray | None,
+    labels: np.ndarray,
+    phrases: list[str] | None = None,
+    phrase_vectors: np.ndarray | None = None,
+    alternatives: int = 3,
+) -> pd.DataFrame:
+    """One unique name per context, chosen zero-shot by distinctiveness.
+
+    Names are assigned jointly (``scipy.optimize.linear_sum_assignment``,
+    maximising total distinctiveness), so every context gets a different
+    phrase. Without phrases (or with more contexts than phrases) the leftover
+    contexts are called "context N".
+
+    Returns
+    -------
+    DataFrame: context_id, context, name_score, alternatives (next best
+    phrases, " | "-separated).
+    """
+    from scipy.optimize import linear_sum_assignment
+
+    ids = np.arange(1, int(labels.max()) + 1) if (labels > 0).any() else np.array([], int)
+    names = {int(c): f"context {c}" for c in ids}
+    scores = {int(c): np.nan for c in ids}
+    others = {int(c): "" for c in ids}
+    if len(ids) and phrases and phrase_vectors is not None and joint is not None:
+        score = distinctiveness(joint, labels, phrase_vectors)
+        rows, cols = linear_sum_assignment(score, maximize=True)
+        for r, c in zip(rows, cols):
+            names[int(ids[r])] = phrases[c]
+            scores[int(ids[r])] = float(score[r, c])
+        for r, cid in enumerate(ids):
+            order = [j for j in np.argsort(-score[r], kind="stable") if phrases[j] != names[int(cid)]]
+            others[int(cid)] = " | ".join(phrases[j] for j in order[:alternatives])
+    table = pd.DataFrame(
+        {
+            "context_id": [int(c) for c in ids],
+            "context": [names[int(c)] for c in ids],
+            "name_score": [scores[int(c)] for c in ids],
+            "alternatives": [others[int(c)] for c in ids],
+        }
+    )
+    return table
+
+
+def exemplars(vectors: np.ndarray, labels: np.ndarray, k: int) -> dict[int, np.ndarray]:
+    """Row numbers of the ``k`` images nearest each context's centre (cosine, cluster vectors)."""
+    x = _normalise(vectors)
+    out = {}
+    for c in np.unique(labels[labels > 0]):
+        rows = np.flatnonzero(labels == c)
+        centre = x[rows].mean(axis=0)
+        centre /= np.linalg.norm(centre) + 1e-12
+        sim = x[rows] @ centre
+        out[int(c)] = rows[np.argsort(-sim, kind="stable")[:k]]
+    return out
+
+
+# --------------------------------------------------------------------------
+# Statistics
+
+
+def fisher_pvalues(a, b, c, d) -> np.ndarray:
+    """Two-sided Fisher exact p-values for 2x2 tables [[a, b], [c, d]] (scipy.stats.fisher_exact).
+
+    Identical tables are tested once. A table with an empty row or column
+    (nothing to compare) gets p = 1.
+    """
+    from scipy.stats import fisher_exact
+
+    tables = np.stack([np.asarray(v, dtype=np.int64) for v in (a, b, c, d)], axis=1)
+    if (tables < 0).any():
+        raise ValueError("fisher_pvalues: negative count in a 2x2 table")
+    unique, inverse = np.unique(tables, axis=0, return_inverse=True)
+    p = np.empty(len(unique))
+    for i, (ta, tb, tc, td) in enumerate(unique):
+        if min(ta + tb, tc + td, ta + tc, tb + td) == 0:
+            p[i] = 1.0
+        else:
+            p[i] = fisher_exact([[ta, tb], [tc, td]], alternative="two-sided").pvalue
+    return p[np.ravel(inverse)]
+
+
+def benjamini_hochberg(p_values) -> np.ndarray:
+    """Benjamini-Hochberg (1995) adjusted p-values (q-values); NaN stays NaN.
+
+    q_(i) = min over j >= i of p_(j) * m / j for the sorted p-values, capped at 1,
+    where m counts the non-missing p-values.
+    """
+    p = np.asarray(p_values, dtype=np.float64)
+    q = np.full(p.shape, np.nan)
+    ok = ~np.isnan(p)
+    m = int(ok.sum())
+    if m == 0:
+        return q
+    values = p[ok]
+    order = np.argsort(values, kind="stable")
+    ranked = values[order] * m / np.arange(1, m + 1)
+    ranked = np.minimum.accumulate(ranked[::-1])[::-1]
+    adjusted = np.empty(m)
+    adjusted[order] = np.minimum(ranked, 1.0)
+    q[ok] = adjusted
+    return q
+
+
+# --------------------------------------------------------------------------
+# Brand x context
+
+
+def brand_context_table(
+    images: pd.DataFrame, labels: np.ndarray, names: dict[int, str] | None = None
+) -> pd.DataFrame:
+    """Count, share, index and Fisher test per brand, source and context.
+
+    For each source (``consumer``, ``owned`` and ``all``), each brand with
+    images of that source, and each context (including -1 "unassigned"):
+
+    - count: the brand's images in the context; brand_n: the brand's images;
+      share = count / brand_n;
+    - category_share: the same share over all images of the brand's category
+      (the brand included), and index = 100 x share / category_share
+      (100 = parity; common marketing practice);
+    - rest_count, rest_n, rest_share: the rest of the category (the brand
+      left out), the group the brand is tested against;
+    - p_value: two-sided Fisher exact test of [[count, brand_n - count],
+      [rest_count, rest_n - rest_count]] (NaN when the brand is alone in its
+      category, and for "unassigned", which is not a context to test);
+    - q_value: Benjamini-Hochberg over every tested row of this table.
+
+    Parameters
+    ----------
+    images : one row per clustered image, with brand, category, source.
+    labels : context id per row of ``images``.
+    names : context id -> name.
+    """
+    _require(images, ["brand", "category", "source"], "images")
+    frame = images[["brand", "category", "source"]].reset_index(drop=True).copy()
+    frame["context_id"] = np.asarray(labels, dtype=np.int64)
+    context_ids = sorted(frame["context_id"].unique())
+    parts = []
+    for source in SOURCES:
+        sub = frame if source == "all" else frame[frame["source"] == source]
+        if sub.empty:
+            continue
+        counts = pd.crosstab([sub["category"], sub["brand"]], sub["context_id"])
+        counts = counts.reindex(columns=context_ids, fill_value=0)
+        long = counts.stack().rename("count").reset_index()
+        long["brand_n"] = long.groupby(["category", "brand"])["count"].transform("sum")
+        long["category_count"] = long.groupby(["category", "context_id"])["count"].transform("sum")
+        long["category_n"] = long.groupby(["category", "context_id"])["brand_n"].transform("sum")
+        long["source"] = source
+        parts.append(long)
+    table = pd.concat(parts, ignore_index=True)
+    table["share"] = table["count"] / table["brand_n"]
+    table["category_share"] = table["category_count"] / table["category_n"]
+    table["index"] = 100.0 * table["share"] / table["category_share"].where(table["category_share"] > 0)
+    table["rest_count"] = table["category_count"] - table["count"]
+    table["rest_n"] = table["category_n"] - table["brand_n"]
+    table["rest_share"] = table["rest_count"] / table["rest_n"].where(table["rest_n"] > 0)
+    tested = (table["rest_n"] > 0) & (table["context_id"] != UNASSIGNED_ID)
+    table["p_value"] = np.nan
+    if tested.any():
+        t = table[tested]
+        table.loc[tested, "p_value"] = fisher_pvalues(
+            t["count"], t["brand_n"] - t["count"], t["rest_count"], t["rest_n"] - t["rest_count"]
+        )
+    table["q_value"] = benjamini_hochberg(table["p_value"].to_numpy())
+    table["context"] = table["context_id"].map(lambda c: _name(c, names))
+    columns = [
+        "brand", "category", "source", "context_id", "context", "count", "brand_n", "share",
+        "category_share", "index", "rest_count", "rest_n", "rest_share", "p_value", "q_value",
+    ]
+    table = table[columns].sort_values(["category", "brand", "source", "context_id"], kind="stable")
+    return table.reset_index(drop=True)
+
+
+def signature_contexts(table: pd.DataFrame, settings: ContextSettings) -> pd.DataFrame:
+    """Contexts where a brand over-indexes significantly.
+
+    A row of ``brand_context_table`` is a signature context when q_value <=
+    fdr, index >= min_index, count >= min_count and the brand's share exceeds
+    the rest of its category's. Ranked within brand and source by index.
+    """
+    over = _over_indexed(table, settings).copy()
+    over = over.sort_values(["brand", "source", "index", "q_value"], ascending=[True, True, False, True], kind="stable")
+    over["rank"] = over.groupby(["brand", "source"]).cumcount() + 1
+    return over.reset_index(drop=True)
+
+
+def unexpected_contexts(table: pd.DataFrame, settings: ContextSettings) -> pd.DataFrame:
+    """Significant over-indexes in contexts that are not the category's own.
+
+    A signature row (see ``signature_contexts``) is unexpected when its
+    category is rarely there (category_share < rare_category_share) or
+    another category dominates the context: that category's share of its own
+    images in the context (same source) is the highest of all categories and
+    at least ``dominance_ratio`` times the brand's category share. Adds
+    dominant_category, dominant_share and reason; ranked by index, overall
+    (rank) and within brand (brand_rank).
+    """
+    over = _over_indexed(table, settings)
+    cat = (
+        table[table["context_id"] != UNASSIGNED_ID]
+        .drop_duplicates(["source", "category", "context_id"])[["source", "category", "context_id", "category_share"]]
+        .sort_values(["source", "context_id", "category_share", "category"], ascending=[True, True, False, True], kind="stable")
+        .drop_duplicates(["source", "context_id"])
+        .rename(columns={"category": "dominant_category", "category_share": "dominant_share"})
+    )
+    out = over.merge(cat, on=["source", "context_id"], how="left")
+    rare = out["category_share"] < settings.rare_category_share
+    dominated = (out["dominant_category"] != out["category"]) & (
+        out["dominant_share"] >= settings.dominance_ratio * out["category_share"]
+    )
+    out = out[rare | dominated].copy()
+    reasons = []
+    for _, row in out.iterrows():
+        why = []
+        if row["category_share"] < settings.rare_category_share:
+            why.append(
+                f"its category is rarely here ({row['category_share']:.1%} of category images, "
+                f"below {settings.rare_category_share:.0%})"
+            )
+        if row["dominant_category"] != row["category"] and row["dominant_share"] >= settings.dominance_ratio * row["category_share"]:
+            why.append(
+                f"typical of category {row['dominant_category']} ({row['dominant_share']:.1%} of its images "
+                f"vs {row['category_share']:.1%})"
+            )
+        reasons.append("; ".join(why))
+    out["reason"] = reasons
+    out = out.sort_values(["index", "q_value", "brand"], ascending=[False, True, True], kind="stable")
+    out["rank"] = np.arange(1, len(out) + 1)
+    out["brand_rank"] = out.groupby(["brand", "source"]).cumcount() + 1
+    return out.reset_index(drop=True)
+
+
+def source_context_gaps(
+    images: pd.DataFrame, labels: np.ndarray, settings: ContextSettings, names: dict[int, str] | None = None
+) -> pd.DataFrame:
+    """Per brand and context: consumer share vs owned share, Fisher test, BH.
+
+    Only brands with both consumer and owned images. gap = consumer_share -
+    owned_share; p_value is the two-sided Fisher exact test of
+    [[consumer_count, consumer_n - consumer_count], [owned_count, owned_n -
+    owned_count]]; q_value is Benjamini-Hochberg over the whole table
+    ("unassigned" rows are reported, not tested). significant: q_value <= fdr
+    and the larger of the two counts >= min_count. direction says which
+    source shows the context more.
+    """
+    _require(images, ["brand", "category", "source"], "images")
+    frame = images[["brand", "category", "source"]].reset_index(drop=True).copy()
+    frame["context_id"] = np.asarray(labels, dtype=np.int64)
+    frame = frame[frame["source"].isin(["consumer", "owned"])]
+    context_ids = sorted(np.unique(np.asarray(labels)))
+    columns = [
+        "brand", "category", "context_id", "context", "consumer_count", "consumer_n", "consumer_share",
+        "owned_count", "owned_n", "owned_share", "gap", "p_value", "q_value", "significant", "direction",
+    ]
+    if frame.empty:
+        return pd.DataFrame(columns=columns)
+    counts = pd.crosstab([frame["category"], frame["brand"], frame["context_id"]], frame["source"])
+    counts = counts.reindex(columns=["consumer", "owned"], fill_value=0)
+    full = pd.MultiIndex.from_product(
+        [counts.index.droplevel(2).unique(), context_ids], names=["cb", "context_id"]
+    )
+    rows = []
+    for (category, brand), cid in full:
+        key = (category, brand, cid)
+        cc, oc = (counts.loc[key, "consumer"], counts.loc[key, "owned"]) if key in counts.index else (0, 0)
+        rows.append((brand, category, int(cid), int(cc), int(oc)))
+    out = pd.DataFrame(rows, columns=["brand", "category", "context_id", "consumer_count", "owned_count"])
+    out["consumer_n"] = out.groupby("brand")["consumer_count"].transform("sum")
+    out["owned_n"] = out.groupby("brand")["owned_count"].transform("sum")
+    out = out[(out["consumer_n"] > 0) & (out["owned_n"] > 0)].copy()
+    out["consumer_share"] = out["consumer_count"] / out["consumer_n"]
+    out["owned_share"] = out["owned_count"] / out["owned_n"]
+    out["gap"] = out["consumer_share"] - out["owned_share"]
+    tested = out["context_id"] != UNASSIGNED_ID
+    out["p_value"] = np.nan
+    if tested.any():
+        t = out[tested]
+        out.loc[tested, "p_value"] = fisher_pvalues(
+            t["consumer_count"], t["consumer_n"] - t["consumer_count"],
+            t["owned_count"], t["owned_n"] - t["owned_count"],
+        )
+    out["q_value"] = benjamini_hochberg(out["p_value"].to_numpy())
+    out["significant"] = (out["q_value"] <= settings.fdr) & (
+        np.maximum(out["consumer_count"], out["owned_count"]) >= settings.min_count
+    )
+    out["direction"] = np.where(
+        out["gap"] > 0, "more in consumer photos", np.where(out["gap"] < 0, "more in owned photos", "equal")
+    )
+    out["context"] = out["context_id"].map(lambda c: _name(c, names))
+    return out[columns].sort_values(["category", "brand", "context_id"], kind="stable").reset_index(drop=True)
+
+
+# --------------------------------------------------------------------------
+# The stage
+
+
+def run_contexts(
+    images: pd.DataFrame,
+    image_ids: list[str],
+    cluster: np.ndarray,
+    joint: np.ndarray | None,
+    settings: ContextSettings,
+    *,
+    seed: int = 0,
+    encode_texts=None,
+    encoder_id: str = "",
+) -> dict[str, pd.DataFrame]:
+    """The whole contexts stage: find, name, index, and list the findings.
+
+    Parameters
+    ----------
+    images : the images table (at least image_id, brand, category, source);
+        rows are matched to ``image_ids``.
+    image_ids : the ids of the embedded images, row-aligned with the vectors.
+    cluster : (n, d_c) cluster vectors; joint : (n, d_j) joint vectors or None.
+    settings : the study's context settings; seed : the study seed.
+    encode_texts : callable phrases -> (m, d_j) vectors in the joint space
+        (the encoder's ``encode_texts``); without it contexts are numbered.
+    encoder_id : recorded in the contexts table.
+
+    Returns
+    -------
+    dict of tables: image_contexts, contexts, brand_contexts,
+    signature_contexts, unexpected_contexts, source_context_gaps.
+    """
+    _require(images, ["image_id", "brand", "category", "source"], "images")
+    cluster = np.asarray(cluster)
+    if len(image_ids) != len(cluster):
+        raise ValueError(f"contexts: {len(image_ids)} image ids but {len(cluster)} cluster vectors")
+    if joint is not None and len(joint) != len(cluster):
+        raise ValueError(f"contexts: {len(joint)} joint vectors but {len(cluster)} cluster vectors")
+    by_id = images.drop_duplicates("image_id").set_index("image_id")
+    missing = [i for i in image_ids if i not in by_id.index]
+    if missing:
+        raise ValueError(f"contexts: image ids not in the images table, e.g. {missing[:3]}")
+    rows = by_id.loc[list(image_ids), ["brand", "category", "source"]].reset_index()
+
+    fit = find_contexts(cluster, settings, seed)
+    labels = fit.labels
+    phrases = load_vocabulary(settings) if encode_texts is not None else None
+    phrase_vectors = np.asarray(encode_texts(phrases), dtype=np.float32) if phrases else None
+    named = name_contexts(joint, labels, phrases, phrase_vectors)
+    names = dict(zip(named["context_id"], named["context"]))
+
+    image_contexts = pd.DataFrame(
+        {
+            "image_id": list(image_ids),
+            "context_id": labels,
+            "context": [_name(c, names) for c in labels],
+            "membership": fit.membership,
+            "map_x": fit.map_xy[:, 0],
+            "map_y": fit.map_xy[:, 1],
+        }
+    )
+
+    near = exemplars(cluster, labels, settings.exemplars)
+    ids = np.asarray(image_ids)
+    contexts = named.copy()
+    contexts["size"] = [int((labels == c).sum()) for c in contexts["context_id"]]
+    contexts["exemplars"] = [" ".join(ids[near[int(c)]]) for c in contexts["context_id"]]
+    unassigned = pd.DataFrame(
+        [{"context_id": UNASSIGNED_ID, "context": UNASSIGNED, "name_score": np.nan, "alternatives": "",
+          "size": fit.n_unassigned, "exemplars": ""}]
+    )
+    contexts = pd.concat([contexts, unassigned], ignore_index=True)
+    contexts["share"] = contexts["size"] / len(labels)
+    for key, value in settings_record(fit.parameters, settings, encoder_id, phrases).items():
+        contexts[key] = value
+    contexts = contexts[
+        ["context_id", "context", "size", "share", "name_score", "alternatives", "exemplars"]
+        + [c for c in contexts.columns if c not in
+           ("context_id", "context", "size", "share", "name_score", "alternatives", "exemplars")]
+    ]
+
+    table = brand_context_table(rows, labels, names)
+    return {
+        "image_contexts": image_contexts,
+        "contexts": contexts,
+        "brand_contexts": table,
+        "signature_contexts": signature_contexts(table, settings),
+        "unexpected_contexts": unexpected_contexts(table, settings),
+        "source_context_gaps": source_context_gaps(rows, labels, settings, names),
+    }
+
+
+def settings_record(parameters: dict, settings: ContextSettings, encoder_id: str = "", phrases=None) -> dict:
+    """Flat record of what produced the contexts (written as columns of ``contexts``)."""
+    record = {f"setting_{k}": v for k, v in parameters.items() if k not in ("contexts_found", "unassigned")}
+    record.update(
+        {
+            "setting_fdr": settings.fdr,
+            "setting_min_index": settings.min_index,
+            "setting_min_count": settings.min_count,
+            "setting_rare_category_share": settings.rare_category_share,
+            "setting_dominance_ratio": settings.dominance_ratio,
+            "setting_vocabulary_size": len(phrases) if phrases else 0,
+            "encoder_id": encoder_id,
+        }
+    )
+    return record
+
+
+# --------------------------------------------------------------------------
+# Helpers
+
+
+def _over_indexed(table: pd.DataFrame, settings: ContextSettings) -> pd.DataFrame:
+    keep = (
+        (table["context_id"] != UNASSIGNED_ID)
+        & (table["q_value"] <= settings.fdr)
+        & (table["index"] >= settings.min_index)
+        & (table["count"] >= settings.min_count)
+        & (table["share"] > table["rest_share"])
+    )
+    return table[keep.fillna(False)]
+
+
+def _name(context_id, names: dict[int, str] | None) -> str:
+    context_id = int(context_id)
+    if context_id == UNASSIGNED_ID:
+        return UNASSIGNED
+    if names and context_id in names:
+        return names[context_id]
+    return f"context {context_id}"
+
+
+def _normalise(x: np.ndarray) -> np.ndarray:
+    x = np.asarray(x, dtype=np.float32)
+    return x / (np.linalg.norm(x, axis=1, keepdims=True) + 1e-12)
+
+
+def _require(frame: pd.DataFrame, columns: list[str], what: str) -> None:
+    missing = [c for c in columns if c not in frame.columns]
+    if missing:
+        raise ValueError(f"contexts: {what} table lacks column(s) {', '.join(missing)}")

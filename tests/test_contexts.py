@@ -1,0 +1,366 @@
+"""Tests of the contexts stage (UMAP + HDBSCAN, naming, brand x context statistics).
+
+UMAP pays a numba JIT compilation of some tens of seconds in every process, so
+the fits are shared through module-scoped fixtures.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from explore import contexts as ctx
+from explore.study import ContextSettings
+
+# --------------------------------------------------------------------------
+# Statistics: no UMAP needed
+
+
+def test_benjamini_hochberg_equals_statsmodels():
+    # Reference: statsmodels.stats.multitest.multipletests(method="fdr_bh"),
+    # the procedure of Benjamini and Hochberg (1995).
+    from statsmodels.stats.multitest import multipletests
+
+    rng = np.random.default_rng(3)
+    for size in (1, 2, 7, 50, 400):
+        p = np.concatenate([rng.uniform(size=size), rng.uniform(0, 0.01, size=size // 3)])
+        p[: size // 5] = p[size // 5]  # ties
+        rng.shuffle(p)
+        ours = ctx.benjamini_hochberg(p)
+        ref = multipletests(p, method="fdr_bh")[1]
+        np.testing.assert_allclose(ours, ref, rtol=1e-12, atol=0)
+        # the rejections at 5 % agree as well
+        assert ((ours <= 0.05) == multipletests(p, alpha=0.05, method="fdr_bh")[0]).all()
+
+
+def test_benjamini_hochberg_leaves_missing_values_out():
+    # Missing p-values (untested rows) are neither counted in m nor adjusted;
+    # reference: statsmodels multipletests on the non-missing values alone.
+    from statsmodels.stats.multitest import multipletests
+
+    p = np.array([0.01, np.nan, 0.04, 0.03, np.nan, 0.5])
+    ours = ctx.benjamini_hochberg(p)
+    assert np.isnan(ours[[1, 4]]).all()
+    ok = ~np.isnan(p)
+    np.testing.assert_allclose(ours[ok], multipletests(p[ok], method="fdr_bh")[1], rtol=1e-12)
+
+
+def test_fisher_pvalues_equal_scipy():
+    # Reference: scipy.stats.fisher_exact(alternative="two-sided").
+    from scipy.stats import fisher_exact
+
+    rng = np.random.default_rng(5)
+    tables = rng.integers(0, 40, size=(60, 4))
+    tables[:5] = tables[5]  # repeated tables are computed once; results must not mix up
+    ours = ctx.fisher_pvalues(*tables.T)
+    for row, p in zip(tables, ours):
+        a, b, c, d = (int(v) for v in row)
+        if min(a + b, c + d, a + c, b + d) == 0:
+            assert p == 1.0
+        else:
+            assert p == pytest.approx(fisher_exact([[a, b], [c, d]]).pvalue, rel=1e-12)
+
+
+def test_fisher_tea_tasting_worked_example():
+    # Fisher (1935), the lady tasting tea: table [[3, 1], [1, 3]]. Worked by
+    # hand from the hypergeometric distribution with 8 cups, 4 milk-first:
+    # P(x) = C(4,x) C(4,4-x) / C(8,4) = 1, 16, 36, 16, 1 (/70) for x = 0..4.
+    # Two-sided p = P(x<=1) + P(x>=3) = (1 + 16 + 16 + 1) / 70 = 34/70.
+    assert ctx.fisher_pvalues([3], [1], [1], [3])[0] == pytest.approx(34 / 70, rel=1e-12)
+
+
+def _hand_table() -> tuple[pd.DataFrame, np.ndarray]:
+    """Two brands of one category, two contexts (1 and 2), both sources.
+
+    brand A consumer: 10 images, 4 in context 1, 6 in context 2
+    brand A owned:     5 images, 0 in context 1, 5 in context 2
+    brand B consumer: 30 images, 6 in context 1, 24 in context 2
+    brand B owned:     5 images, 1 in context 1, 4 in context 2
+    """
+    rows = []
+    for brand, source, in1, in2 in (("A", "consumer", 4, 6), ("A", "owned", 0, 5),
+                                     ("B", "consumer", 6, 24), ("B", "owned", 1, 4)):
+        rows += [(brand, source, 1)] * in1 + [(brand, source, 2)] * in2
+    frame = pd.DataFrame(rows, columns=["brand", "source", "context_id"])
+    frame["category"] = "drinks"
+    return frame, frame["context_id"].to_numpy()
+
+
+def test_index_on_hand_worked_table():
+    # Worked by hand (index = 100 x brand share / category share, 100 = parity,
+    # common marketing practice):
+    # consumer, context 1: A share 4/10 = 0.4; category share (4+6)/40 = 0.25;
+    #   A index = 100 x 0.4 / 0.25 = 160; B share 6/30 = 0.2, index 80.
+    #   A's rest of category = B: 6/30 = 0.2.
+    # all sources, context 1: A 4/15 = 0.26667; category 11/50 = 0.22;
+    #   A index = 100 x (4/15) / (11/50) = 121.2121...; B 7/35 = 0.2, index 90.909...
+    # owned, context 2: A 5/5 = 1.0; category 9/10 = 0.9; index 111.111...
+    images, labels = _hand_table()
+    table = ctx.brand_context_table(images, labels)
+
+    def row(brand, source, context_id):
+        hit = table[(table.brand == brand) & (table.source == source) & (table.context_id == context_id)]
+        assert len(hit) == 1
+        return hit.iloc[0]
+
+    r = row("A", "consumer", 1)
+    assert (r["count"], r["brand_n"], r["rest_count"], r["rest_n"]) == (4, 10, 6, 30)
+    assert r["share"] == pytest.approx(0.4)
+    assert r["category_share"] == pytest.approx(0.25)
+    assert r["index"] == pytest.approx(160.0)
+    assert r["rest_share"] == pytest.approx(0.2)
+    assert row("B", "consumer", 1)["index"] == pytest.approx(80.0)
+    assert row("A", "all", 1)["index"] == pytest.approx(121.2121212121)
+    assert row("B", "all", 1)["index"] == pytest.approx(90.9090909091)
+    assert row("A", "owned", 2)["index"] == pytest.approx(111.1111111111)
+    # Fisher test of the brand against the rest of its category,
+    # reference scipy.stats.fisher_exact on the table counted by hand above.
+    from scipy.stats import fisher_exact
+
+    assert r["p_value"] == pytest.approx(fisher_exact([[4, 6], [6, 24]]).pvalue, rel=1e-12)
+    # shares of each brand and source add up to one
+    sums = table.groupby(["brand", "source"])["share"].sum()
+    np.testing.assert_allclose(sums.to_numpy(), 1.0)
+
+
+def test_brand_table_tests_only_real_contexts_and_lone_brands_are_untested():
+    images, labels = _hand_table()
+    labels = labels.copy()
+    labels[:2] = ctx.UNASSIGNED_ID
+    lone = pd.DataFrame({"brand": ["C"] * 6, "source": ["consumer"] * 6, "category": ["solo"] * 6})
+    images = pd.concat([images, lone], ignore_index=True)
+    labels = np.concatenate([labels, [1, 1, 1, 2, 2, 2]])
+    table = ctx.brand_context_table(images, labels)
+    assert table.loc[table.context_id == ctx.UNASSIGNED_ID, "p_value"].isna().all()
+    assert table.loc[table.brand == "C", "p_value"].isna().all()
+    c = table[table.brand == "C"]
+    assert c.loc[c["count"] > 0, "index"].eq(100.0).all()  # alone, it is its own category
+    assert c.loc[c["category_share"] == 0, "index"].isna().all()  # 0 / 0 has no index
+    # The unassigned images are reported, not dropped: counts add up to brand_n.
+    counts = table.groupby(["brand", "source"]).agg(total=("count", "sum"), n=("brand_n", "first"))
+    assert (counts.total == counts.n).all()
+
+
+def _finding_table() -> pd.DataFrame:
+    """Hand-made brand x context rows (counts chosen so every rule is exercised)."""
+    rows = [
+        # brand, category, source, context, count, brand_n, category_share, rest_share, q
+        ("K", "drinks", "all", 1, 24, 90, 0.10, 0.017, 1e-6),   # rare? no (10 %); dominated by apparel
+        ("K", "drinks", "all", 2, 28, 90, 0.14, 0.08, 1e-3),    # typical for drinks: signature only
+        ("F", "drinks", "all", 3, 6, 90, 0.03, 0.005, 0.01),    # rare in drinks: unexpected
+        ("F", "drinks", "all", 4, 4, 90, 0.01, 0.000, 0.01),    # below min_count
+        ("F", "drinks", "all", 2, 20, 90, 0.14, 0.11, 0.20),    # not significant
+        ("T", "apparel", "all", 1, 50, 90, 0.27, 0.13, 1e-9),   # its own category's context
+        ("T", "apparel", "all", 2, 5, 90, 0.05, 0.05, 1.0),
+    ]
+    t = pd.DataFrame(rows, columns=["brand", "category", "source", "context_id", "count", "brand_n",
+                                    "category_share", "rest_share", "q_value"])
+    t["share"] = t["count"] / t["brand_n"]
+    t["index"] = 100 * t["share"] / t["category_share"]
+    t["context"] = "c" + t["context_id"].astype(str)
+    return t
+
+
+def test_signature_and_unexpected_rules():
+    s = ContextSettings()  # fdr 0.05, min_index 120, min_count 5, rare 0.05, dominance 2
+    table = _finding_table()
+    sig = ctx.signature_contexts(table, s)
+    assert set(zip(sig.brand, sig.context_id)) == {("K", 1), ("K", 2), ("F", 3), ("T", 1)}
+    k = sig[sig.brand == "K"].sort_values("rank")
+    assert list(k.context_id) == [1, 2]  # 267 before 222 (index 100 x (24/90)/0.10 = 266.7)
+    unexpected = ctx.unexpected_contexts(table, s)
+    got = {(r.brand, r.context_id): r for r in unexpected.itertuples()}
+    assert set(got) == {("K", 1), ("F", 3)}
+    assert got[("K", 1)].dominant_category == "apparel"  # 27 % >= 2 x 10 %
+    assert "apparel" in got[("K", 1)].reason
+    assert "rarely" in got[("F", 3)].reason
+    # Ranked by index: K in context 1 is 100 x (24/90) / 0.10 = 266.7,
+    # F in context 3 is 100 x (6/90) / 0.03 = 222.2.
+    ranked = unexpected.sort_values("rank")
+    assert list(ranked.brand) == ["K", "F"]
+    assert ranked["index"].to_numpy() == pytest.approx([266.6667, 222.2222], rel=1e-4)
+
+
+def test_source_gaps_both_directions():
+    # Brand K: consumer photos 20/45 in context 1 vs owned 4/45; owned 22/45 in
+    # context 2 vs consumer 6/45. Reference for the p-values: scipy.stats.fisher_exact.
+    from scipy.stats import fisher_exact
+
+    rows = []
+    for source, c1, c2, c3 in (("consumer", 20, 6, 19), ("owned", 4, 22, 19)):
+        rows += [(source, 1)] * c1 + [(source, 2)] * c2 + [(source, 3)] * c3
+    images = pd.DataFrame(rows, columns=["source", "context_id"])
+    images["brand"], images["category"] = "K", "drinks"
+    gaps = ctx.source_context_gaps(images, images["context_id"].to_numpy(), ContextSettings())
+    by = gaps.set_index("context_id")
+    assert by.loc[1, "direction"] == "more in consumer photos" and by.loc[1, "significant"]
+    assert by.loc[2, "direction"] == "more in owned photos" and by.loc[2, "significant"]
+    assert not by.loc[3, "significant"]
+    assert by.loc[1, "gap"] == pytest.approx(20 / 45 - 4 / 45)
+    p1 = fisher_exact([[20, 25], [4, 41]]).pvalue
+    assert by.loc[1, "p_value"] == pytest.approx(p1, rel=1e-12)
+    from statsmodels.stats.multitest import multipletests  # BH reference
+
+    np.testing.assert_allclose(by["q_value"], multipletests(by["p_value"], method="fdr_bh")[1])
+
+
+def test_naming_prefers_distinctive_phrases_and_is_unique():
+    # Three contexts, each planted close to its own phrase, plus a "generic"
+    # phrase close to every image: a nearest-phrase rule would call every
+    # context "generic"; the distinctiveness rule must not.
+    rng = np.random.default_rng(0)
+    d = 64
+    basis = np.linalg.qr(rng.normal(size=(d, d)))[0][:5]
+    generic, own = basis[0], basis[1:4]
+    labels = np.repeat([1, 2, 3], 40)
+    joint = 0.8 * generic + 0.5 * own[labels - 1] + 0.05 * rng.normal(size=(120, d))
+    phrases = ["generic", "one", "two", "three", "unrelated"]
+    vectors = np.vstack([generic, own, basis[4]])
+    named = ctx.name_contexts(joint, labels, phrases, vectors)
+    assert dict(zip(named.context_id, named.context)) == {1: "one", 2: "two", 3: "three"}
+    assert (named["name_score"] > 0).all()
+    # the nearest phrase by raw cosine is "generic" for every context (the trap)
+    raw = ctx._normalise(joint) @ ctx._normalise(vectors).T
+    assert all(phrases[int(np.argmax(raw[labels == c].mean(0)))] == "generic" for c in (1, 2, 3))
+
+
+def test_vocabulary_default_extend_replace(tmp_path):
+    base = ctx.load_vocabulary(ContextSettings())
+    assert 120 <= len(base) <= 200 and len(set(base)) == len(base)
+    more = ctx.load_vocabulary(ContextSettings(extra_phrases=["on a houseboat", base[0]]))
+    assert more[-1] == "on a houseboat" and len(more) == len(base) + 1
+    own = tmp_path / "words.txt"
+    own.write_text("# mine\nat the harbour\n\nin a greenhouse\n", encoding="utf-8")
+    assert ctx.load_vocabulary(ContextSettings(vocabulary=own, replace_vocabulary=True)) == [
+        "at the harbour", "in a greenhouse"]
+    with pytest.raises(ValueError, match="not found"):
+        ctx.load_vocabulary(ContextSettings(vocabulary=tmp_path / "none.txt"))
+
+
+def test_parameters_scale_with_n_and_settings_win():
+    s = ContextSettings()
+    small, large = ctx.resolve_parameters(300, s), ctx.resolve_parameters(100_000, s)
+    assert (small["neighbours"], small["min_cluster_size"]) == (15, 10)
+    assert (large["neighbours"], large["min_cluster_size"]) == (50, 500)
+    assert ctx.resolve_parameters(10_000, s)["min_cluster_size"] == 50
+    fixed = ctx.resolve_parameters(300, ContextSettings(neighbours=8, min_cluster_size=25, min_samples=3))
+    assert (fixed["neighbours"], fixed["min_cluster_size"], fixed["min_samples"]) == (8, 25, 3)
+
+
+def test_exact_neighbours_match_sklearn():
+    # Reference: sklearn.neighbors.NearestNeighbors(metric="cosine", algorithm="brute").
+    from sklearn.neighbors import NearestNeighbors
+
+    rng = np.random.default_rng(2)
+    x = rng.normal(size=(300, 16)).astype(np.float32)
+    idx, dist = ctx.exact_neighbours(x, 7, chunk=64)
+    ref_d, ref_i = NearestNeighbors(n_neighbors=7, metric="cosine", algorithm="brute").fit(x).kneighbors(x)
+    assert (idx == ref_i).mean() > 0.99  # float ties may swap rank
+    np.testing.assert_allclose(dist, ref_d, atol=1e-5)
+
+
+# --------------------------------------------------------------------------
+# UMAP + HDBSCAN (module-scoped fits)
+
+
+@pytest.fixture(scope="module")
+def blobs():
+    # sklearn.datasets.make_blobs: 6 Gaussian blobs of unequal size in 512-d.
+    from sklearn.datasets import make_blobs
+
+    x, y = make_blobs(n_samples=[60, 80, 100, 120, 140, 100], n_features=512, cluster_std=4.0,
+                      random_state=0)
+    return x.astype(np.float32), y
+
+
+@pytest.fixture(scope="module")
+def blob_fit(blobs):
+    x, _ = blobs
+    return ctx.find_contexts(x, ContextSettings(), seed=7)
+
+
+def test_contexts_agree_with_blobs(blobs, blob_fit):
+    # Reference: sklearn.metrics.adjusted_rand_score against the true blobs.
+    from sklearn.metrics import adjusted_rand_score
+
+    _, y = blobs
+    ari = adjusted_rand_score(y, blob_fit.labels)
+    print(f"blobs: ARI {ari:.3f}, {blob_fit.n_contexts} contexts, {blob_fit.n_unassigned} unassigned")
+    assert ari >= 0.9
+    assert blob_fit.map_xy.shape == (len(y), 2)
+    assert blob_fit.points.shape == (len(y), 10)
+    assert ((blob_fit.membership >= 0) & (blob_fit.membership <= 1)).all()
+    assert (blob_fit.membership[blob_fit.labels == ctx.UNASSIGNED_ID] == 0).all()
+    sizes = np.bincount(blob_fit.labels[blob_fit.labels > 0])[1:]
+    assert (np.diff(sizes) <= 0).all()  # ids 1..K by decreasing size
+
+
+def test_same_seed_same_contexts(blobs, blob_fit):
+    x, _ = blobs
+    again = ctx.find_contexts(x, ContextSettings(), seed=7)
+    np.testing.assert_array_equal(again.labels, blob_fit.labels)
+    np.testing.assert_array_equal(again.map_xy, blob_fit.map_xy)
+    np.testing.assert_array_equal(again.membership, blob_fit.membership)
+
+
+def test_sampled_fit_places_the_rest(blobs):
+    # Above fit_sample images UMAP is fitted on a seeded sample and the rest
+    # are placed from their neighbours; contexts must still match the blobs
+    # (sklearn.metrics.adjusted_rand_score) and be reproducible.
+    from sklearn.metrics import adjusted_rand_score
+
+    x, y = blobs
+    s = ContextSettings(fit_sample=300)
+    a = ctx.find_contexts(x, s, seed=1)
+    b = ctx.find_contexts(x, s, seed=1)
+    ari = adjusted_rand_score(y, a.labels)
+    print(f"blobs, fitted on 300 of {len(y)}: ARI {ari:.3f}")
+    assert ari >= 0.9
+    np.testing.assert_array_equal(a.labels, b.labels)
+
+
+def test_run_contexts_tables(blobs):
+    x, y = blobs
+    n = len(y)
+    rng = np.random.default_rng(0)
+    brand = np.where(rng.random(n) < 0.5, "Alba", "Brisk")
+    brand = np.where(y == 5, "Corvo", brand)  # Corvo only in blob 5
+    brand[np.flatnonzero(y == 0)[:40]] = "Alba"  # Alba heavy in blob 0
+    images = pd.DataFrame({
+        "image_id": [f"i{i:04d}" for i in range(n)],
+        "brand": brand,
+        "category": np.where(brand == "Corvo", "other", "main"),
+        "source": np.where(rng.random(n) < 0.5, "consumer", "owned"),
+    })
+    images.loc[(images.brand == "Alba") & (y == 0), "source"] = "consumer"  # consumer-only context
+    phrase_basis = np.linalg.qr(rng.normal(size=(512, 512)))[0]
+
+    def encode_texts(phrases):
+        return phrase_basis[: len(phrases)].astype(np.float32)
+
+    shuffled = images.sample(frac=1.0, random_state=1)  # rows are matched by id, not position
+    tables = ctx.run_contexts(shuffled, list(images.image_id), x, x, ContextSettings(), seed=7,
+                              encode_texts=encode_texts, encoder_id="test-encoder")
+    assert set(tables) == {"image_contexts", "contexts", "brand_contexts", "signature_contexts",
+                           "unexpected_contexts", "source_context_gaps"}
+    ic, cx = tables["image_contexts"], tables["contexts"]
+    assert list(ic.columns) == ["image_id", "context_id", "context", "membership", "map_x", "map_y"]
+    assert len(ic) == n and list(ic.image_id) == list(images.image_id)
+    assert cx.loc[cx.context_id == -1, "size"].item() == (ic.context_id == -1).sum()
+    assert cx["size"].sum() == n
+    real = cx[cx.context_id > 0]
+    assert real["context"].is_unique
+    assert (real["exemplars"].str.split().map(len) == min(6, real["size"].min())).all()
+    assert (cx["encoder_id"] == "test-encoder").all() and "setting_neighbours" in cx
+    for ex, cid in zip(real.exemplars, real.context_id):
+        assert set(ic.set_index("image_id").loc[ex.split(), "context_id"]) == {cid}
+    bc = tables["brand_contexts"]
+    truth_ctx = ic.context_id.to_numpy()
+    blob0 = pd.Series(truth_ctx[y == 0]).mode()[0]
+    sig = tables["signature_contexts"]
+    assert ((sig.brand == "Alba") & (sig.source == "all") & (sig.context_id == blob0)).any()
+    gaps = tables["source_context_gaps"]
+    hit = gaps[(gaps.brand == "Alba") & (gaps.context_id == blob0)]
+    assert hit["significant"].item() and hit["direction"].item() == "more in consumer photos"
+    assert bc["q_value"].dropna().between(0, 1).all()
