@@ -573,17 +573,64 @@ def _flag_near_duplicates(table: pd.DataFrame, hashes: dict[int, int], max_bits:
     if len(rows) < 2 or max_bits < 0:
         return
     values = np.array([hashes[i] for i in rows], dtype=np.uint64)
+    partner = near_duplicate_partners(values, max_bits)
     ids = table["image_id"].to_numpy()
-    block = 1024
-    for start in range(1, len(rows), block):
-        stop = min(start + block, len(rows))
-        # distances of rows start..stop-1 to every row before stop
-        dist = _popcount(values[start:stop, None] ^ values[None, :stop])
+    for k in np.flatnonzero(partner >= 0):
+        table.at[rows[k], "near_duplicate_of"] = ids[rows[partner[k]]]
+
+
+def near_duplicate_partners(values: np.ndarray, max_bits: int) -> np.ndarray:
+    """For each 64-bit hash, the index of the first earlier hash within ``max_bits`` bits, else -1.
+
+    Exact, without comparing all pairs: split the 64 bits into ``max_bits + 1``
+    bands; two hashes at most ``max_bits`` apart differ in at most that many
+    bands, so (pigeonhole) they agree on at least one whole band. Only hashes
+    sharing a band value are compared.
+    """
+    values = np.asarray(values, dtype=np.uint64)
+    n = len(values)
+    best = np.full(n, n, dtype=np.int64)
+    bands = max_bits + 1
+    edges = np.linspace(0, 64, bands + 1).round().astype(int)
+    for low, high in zip(edges[:-1], edges[1:]):
+        width = int(high - low)
+        if width == 0:
+            continue
+        mask = np.uint64((1 << width) - 1)
+        key = (values >> np.uint64(low)) & mask
+        order = np.argsort(key, kind="stable")  # stable: each group stays in table order
+        key_sorted = key[order]
+        starts = np.concatenate([[0], np.flatnonzero(np.diff(key_sorted)) + 1])
+        sizes = np.diff(np.concatenate([starts, [n]]))
+        # Small groups, all at once: pairs that are d places apart in sorted order.
+        small = np.repeat(sizes <= _SMALL_GROUP, sizes)
+        largest_small = int(sizes[sizes <= _SMALL_GROUP].max(initial=1))
+        for d in range(1, largest_small):
+            at = np.flatnonzero((key_sorted[d:] == key_sorted[:-d]) & small[d:])
+            earlier, later = order[at], order[at + d]  # earlier < later (stable sort)
+            close = _popcount(values[earlier] ^ values[later]) <= max_bits
+            np.minimum.at(best, later[close], earlier[close])
+        # Large groups (e.g. many flat images share hash 0), block by block.
+        for first, size in zip(starts[sizes > _SMALL_GROUP], sizes[sizes > _SMALL_GROUP]):
+            _closest_earlier(values, order[first : first + size], max_bits, best)
+    return np.where(best < n, best, -1)
+
+
+_SMALL_GROUP = 64
+
+
+def _closest_earlier(values: np.ndarray, group: np.ndarray, max_bits: int, best: np.ndarray) -> None:
+    """Within ``group`` (indices in increasing order), lower ``best`` to the first close earlier index."""
+    block = max(8, 4_000_000 // len(group))  # keeps each distance block near 4 million entries
+    group_values = values[group]
+    for start in range(1, len(group), block):
+        stop = min(start + block, len(group))
+        dist = _popcount(group_values[start:stop, None] ^ group_values[None, :stop])
         earlier = np.arange(stop)[None, :] < np.arange(start, stop)[:, None]
         close = (dist <= max_bits) & earlier
         for k in np.flatnonzero(close.any(axis=1)):
-            j = int(np.argmax(close[k]))
-            table.at[rows[start + k], "near_duplicate_of"] = ids[rows[j]]
+            i = group[start + k]
+            best[i] = min(best[i], group[int(np.argmax(close[k]))])
 
 
 _BYTE_BITS = np.array([bin(b).count("1") for b in range(256)], dtype=np.uint8)

@@ -424,3 +424,28 @@ def test_study_images_use_the_study_settings(tmp_path):
     assert table[["brand", "category", "source", "status"]].values.tolist() == [
         ["Alpha", "snacks", "owned", "ok"]
     ]
+
+
+def test_banded_near_duplicate_search_equals_all_pairs():
+    # Reference: the definition, every earlier hash compared bit by bit.
+    def first_close_earlier(values, max_bits):
+        return [
+            next((j for j in range(i) if bin(int(values[i]) ^ int(values[j])).count("1") <= max_bits), -1)
+            for i in range(len(values))
+        ]
+
+    rng = np.random.default_rng(1)
+    base = rng.integers(0, 2**63, 200, dtype=np.int64).astype(np.uint64)
+    values = np.concatenate(
+        [
+            base,
+            base[:60] ^ np.uint64(0b10110),  # 3 bits apart
+            base[:30] ^ np.uint64((1 << 63) | (1 << 31) | (1 << 9) | (1 << 2) | 1),  # 5 bits apart
+            np.zeros(100, np.uint64),  # a large group of equal hashes (flat images)
+            np.uint64(1) << np.arange(60, dtype=np.uint64),  # one bit from zero
+        ]
+    )
+    rng.shuffle(values)
+    for max_bits in (0, 3, 4, 5):
+        got = collect.near_duplicate_partners(values, max_bits)
+        assert got.tolist() == first_close_earlier(values, max_bits), max_bits
