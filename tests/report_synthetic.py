@@ -48,6 +48,8 @@ def make_output_folder(
     with_compare: bool = True,
     with_contexts: bool = True,
     with_attributes: bool = True,
+    textured: bool = False,
+    thumbnail_px: int = 96,
 ) -> Path:
     """Write a synthetic output folder (and its images under ``folder/images``)."""
     from PIL import Image, ImageDraw
@@ -87,6 +89,13 @@ def make_output_folder(
         draw = ImageDraw.Draw(im)
         x0, y0 = int(rng.integers(0, image_px // 2)), int(rng.integers(0, image_px // 3))
         draw.ellipse([x0, y0, x0 + image_px // 3, y0 + image_px // 3], fill=(250, 250, 240))
+        if textured:
+            # Photo-like detail (shapes and grain) so JPEG sizes resemble real photos more than flat colour.
+            for _ in range(12):
+                p0, p1 = rng.integers(0, image_px, size=2), rng.integers(0, image_px, size=2)
+                draw.line([tuple(p0), tuple(p1)], fill=tuple(int(v) for v in rng.integers(0, 255, size=3)), width=int(rng.integers(1, 6)))
+            grain = rng.integers(0, 24, size=(im.height, im.width, 3), dtype=np.uint8)
+            im = Image.fromarray(np.asarray(im, dtype=np.uint8) // 8 * 7 + grain)
         im.save(path, "JPEG", quality=80)
         data = path.read_bytes()
         rows.append(
@@ -215,8 +224,13 @@ def make_output_folder(
         ctx_rows = []
         for c, name in enumerate(contexts):
             members = usable["image_id"][contexts_of == c].tolist()
-            ctx_rows.append(dict(context_id=c, context=name, size=len(members), name_score=0.3,
+            ctx_rows.append(dict(context_id=c, context=name, size=len(members), share=len(members) / n,
+                                 name_score=0.3, alternatives=f"{name} outdoors | {name} at home",
                                  exemplars=" ".join(members[:6]), min_cluster_size=5))
+        # As contexts.py writes it: unassigned images as context -1, last.
+        ctx_rows.append(dict(context_id=-1, context="unassigned", size=int((contexts_of < 0).sum()),
+                             share=float((contexts_of < 0).mean()), name_score=np.nan, alternatives="",
+                             exemplars="", min_cluster_size=5))
         tables["contexts"] = pd.DataFrame(ctx_rows)
         bc_rows = []
         frame = usable.assign(context_id=contexts_of)
@@ -224,7 +238,7 @@ def make_output_folder(
             sub = frame if source == "all" else frame[frame.source == source]
             for brand, g in sub.groupby("brand"):
                 cat_sub = sub[sub.category == brands[brand]]
-                for c, name in enumerate(contexts):
+                for c, name in [(-1, "unassigned")] + list(enumerate(contexts)):
                     count = int((g.context_id == c).sum())
                     share = count / len(g)
                     cshare = (cat_sub.context_id == c).mean()
@@ -234,10 +248,12 @@ def make_output_folder(
                                         p_value=0.01 if count > 8 else 0.5, q_value=0.03 if count > 8 else 0.6))
         bc = pd.DataFrame(bc_rows)
         tables["brand_contexts"] = bc
-        allsrc = bc[bc.source == "all"]
-        tables["signature_contexts"] = allsrc[allsrc["index"] >= 110].copy()
-        tables["unexpected_contexts"] = allsrc[allsrc["index"] <= 90].assign(
-            reason="rare in the category but frequent for this brand"
+        assigned = bc[bc.context_id >= 0]
+        tables["signature_contexts"] = assigned[(assigned["index"] >= 110) & (assigned.source == "all")].assign(
+            rest_count=1, rest_n=10, rest_share=0.1, rank=1)
+        tables["unexpected_contexts"] = assigned[(assigned["index"] <= 90) & (assigned.source != "owned")].assign(
+            rest_count=1, rest_n=10, rest_share=0.1, dominant_category="outdoor", dominant_share=0.3,
+            reason="typical of category outdoor", rank=1, brand_rank=1,
         )
         tables["source_context_gaps"] = bc[bc.source != "all"].pivot_table(
             index=["brand", "context_id", "context"], columns="source", values="share"
@@ -303,7 +319,7 @@ def make_output_folder(
         "stage_seconds": {"collect": 0.1, "embed": 1.0},
         "settings": {"name": "Synthetic test study", "seed": seed, "brands": brands,
                      "images": {"root": str(root), "manifest": None},
-                     "report": {"thumbnail_px": 96, "max_thumbnails": 20000}},
+                     "report": {"thumbnail_px": thumbnail_px, "max_thumbnails": 20000}},
         "tables": list(tables),
         "notes": [],
     }

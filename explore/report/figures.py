@@ -94,7 +94,6 @@ def context_map(x: np.ndarray, y: np.ndarray, colours: list[str]):
         active_scroll=wheel,
         height=560,
         sizing_mode="stretch_width",
-        match_aspect=True,
     )
     size = 7 if n < 2000 else (5 if n < 10000 else 4)
     renderer = p.scatter(

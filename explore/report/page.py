@@ -249,6 +249,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
                 "name": str(rec["context"]),
                 "size": int(rec["size"]) if "size" in rec and pd.notna(rec["size"]) else None,
                 "name_score": _clean(rec.get("name_score")),
+                "alternatives": str(rec.get("alternatives") or "") if pd.notna(rec.get("alternatives")) else "",
                 "exemplars": str(rec.get("exemplars") or "").split(),
                 "color": colour,
             })
@@ -257,7 +258,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         names = image_contexts.drop_duplicates("context_id").set_index("context_id")["context"].to_dict()
         for colour, cid in zip(colours.categorical(len(ids)), ids):
             context_list.append({"id": cid, "name": str(names.get(cid, cid)), "size": None, "name_score": None,
-                                 "exemplars": [], "color": colour})
+                                 "alternatives": "", "exemplars": [], "color": colour})
     context_by_id = {c["id"]: c for c in context_list}
 
     points = usable[[c for c in ("image_id", "relpath", "brand", "category", "source") if c in usable]].copy()
@@ -489,7 +490,13 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         from bokeh.models import Spacer
 
         models = [Spacer(name="empty_spacer", width=1, height=1)]
-    return file_html(models, INLINE, title=title, template=template, template_variables=variables)
+    from bokeh.document import Document
+
+    doc = Document()
+    with doc.models.freeze():  # one model-graph walk for all roots instead of one per root
+        for model in models:
+            doc.add_root(model)
+    return file_html(doc, INLINE, title=title, template=template, template_variables=variables)
 
 
 def fmt_pct_points(v) -> str:
@@ -584,11 +591,8 @@ def _contexts_section(out: OutputFolder, context_list: list[dict], bc_all, brand
             lists.append({"key": key, "title": title, "missing": out.missing(key), "rows": []})
             continue
         preferred = ["brand", "source", "context", "count", "brand_n", "share", "category_share",
-                     "index", "q_value", "reason", "note"]
-        skip = {"context_id", "exemplars", "category", "p_value"}
-        cols = [c for c in preferred if c in table.columns] + [
-            c for c in table.columns if c not in preferred and c not in skip
-        ][:3]
+                     "index", "q_value", "reason"]
+        cols = [c for c in preferred if c in table.columns]
         if "source" in cols and set(table["source"].astype(str)) <= {"all"}:
             cols.remove("source")
         rows = []
@@ -656,7 +660,7 @@ def _brand_view_data(out: OutputFolder, brands: list[str], bc, points: pd.DataFr
             part = bc[bc["source"] == src] if "source" in bc else (bc if src == "all" else bc.iloc[0:0])
             for rec in part.to_dict("records"):
                 b = rec["brand"]
-                if b not in view:
+                if b not in view or int(rec["context_id"]) < 0:  # "unassigned" is not a context to index
                     continue
                 view[b]["contexts"].append({
                     "source": src,

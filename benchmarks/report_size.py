@@ -1,0 +1,59 @@
+"""Report file size and build time for 1,000, 5,000 and 20,000 images (synthetic).
+
+Writes a synthetic output folder per size (generated 256 x 192 photos with
+shapes and grain, 112 px thumbnails (the default), fictional brands, tables with the documented columns; see
+tests/report_synthetic.py), then times ``write_report`` twice: a cold build
+(every thumbnail decoded and encoded) and a warm rebuild (thumbnails from the
+cache in the output folder). Prints one line per size.
+
+    .venv/bin/python benchmarks/report_size.py [SIZES ...] [--keep DIR]
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+
+import report_synthetic  # noqa: E402
+
+from explore.report import write_report  # noqa: E402
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("sizes", nargs="*", type=int, default=[1000, 5000, 20000])
+    parser.add_argument("--keep", type=Path, help="keep the folders (and reports) under this folder")
+    args = parser.parse_args()
+    base = args.keep or Path(tempfile.mkdtemp(prefix="report_size_"))
+    print(f"{'images':>8} {'file MB':>8} {'thumbs':>7} {'cold build s':>13} {'warm build s':>13} {'make data s':>12}")
+    try:
+        for n in args.sizes:
+            folder = base / f"n{n}"
+            shutil.rmtree(folder, ignore_errors=True)
+            t0 = time.perf_counter()
+            out = report_synthetic.make_output_folder(folder, n, image_px=256, textured=True, seed=n, thumbnail_px=112)
+            made = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            path = write_report(out)
+            cold = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            path = write_report(out)
+            warm = time.perf_counter() - t0
+            text = path.read_text(encoding="utf-8")
+            thumbs = text.count('":"/9j/')  # base64 JPEGs start with /9j/
+            size = path.stat().st_size / 1e6
+            print(f"{n:>8,} {size:>8.1f} {thumbs:>7,} {cold:>13.1f} {warm:>13.1f} {made:>12.1f}", flush=True)
+    finally:
+        if not args.keep:
+            shutil.rmtree(base, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

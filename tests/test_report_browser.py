@@ -1,0 +1,318 @@
+"""The report in a real browser: Debian's headless Chromium driven by playwright.
+
+Checks: opens from file:// with no console error and no request other than the
+file itself (and data:/blob: URIs); the context map holds one glyph per plotted
+image (bokeh's data source length, read through ``Bokeh.documents``); hovering
+a point shows its thumbnail; the colour selector recolours; a box selection
+fills the gallery with the enclosed photos; filters hide points; a CSV download
+equals the table on disk; hostile names run nothing and show as text.
+Screenshots go to outputs/test-artifacts/.
+
+Skipped, with the reason, when /usr/bin/chromium is absent (``apt-get install
+chromium``; .ci/run installs it).
+"""
+
+from __future__ import annotations
+
+import io
+import os
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import report_synthetic as synth
+from explore.report import write_report
+
+CHROMIUM = Path("/usr/bin/chromium")
+ARTIFACTS = Path(__file__).resolve().parent.parent / "outputs" / "test-artifacts"
+
+pytestmark = [
+    pytest.mark.browser,
+    pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's chromium is not installed (/usr/bin/chromium); apt-get install -y chromium"),
+]
+
+
+@pytest.fixture(scope="module")
+def browser():
+    sync_api = pytest.importorskip("playwright.sync_api", reason="playwright is not installed")
+    with sync_api.sync_playwright() as p:
+        b = p.chromium.launch(
+            executable_path=str(CHROMIUM),
+            args=["--no-sandbox", "--disable-background-networking", "--disable-component-update"],
+        )
+        yield b
+        b.close()
+
+
+class Opened:
+    """A page with everything it logged, requested and tried to pop up."""
+
+    def __init__(self, browser, path: Path, width: int = 1400, height: int = 950):
+        self.context = browser.new_context(viewport={"width": width, "height": height}, accept_downloads=True)
+        self.page = self.context.new_page()
+        self.errors: list[str] = []
+        self.requests: list[str] = []
+        self.dialogs: list[str] = []
+        self.page.on("console", lambda m: self.errors.append(m.text) if m.type == "error" else None)
+        self.page.on("pageerror", lambda e: self.errors.append(f"page error: {e}"))
+        self.page.on("request", lambda r: self.requests.append(r.url))
+        self.page.on("dialog", self._dialog)
+        self.page.goto(path.resolve().as_uri())
+        self.page.wait_for_function(
+            "window.Bokeh && Bokeh.documents.length > 0 && Bokeh.documents[0].is_idle", timeout=60_000
+        )
+
+    def _dialog(self, dialog):
+        self.dialogs.append(dialog.message)
+        dialog.dismiss()
+
+    def outside_requests(self) -> list[str]:
+        return [u for u in self.requests if not u.startswith(("file://", "data:", "blob:"))]
+
+    def close(self):
+        self.context.close()
+
+
+def map_js(page, body: str):
+    """Run ``body`` with ``doc``, ``src`` (the map's data source), ``fig`` and ``view`` bound."""
+    return page.evaluate(
+        "() => { const doc = Bokeh.documents[0]; const src = doc.get_model_by_name('map_source');"
+        " const fig = doc.get_model_by_name('context_map'); const view = Bokeh.index.get_one(fig);"
+        f" {body} }}"
+    )
+
+
+def screen_xy(page, x: float, y: float) -> tuple[float, float]:
+    """Page coordinates of the data point (x, y) on the context map."""
+    page.locator("#map-frame").scroll_into_view_if_needed()
+    return tuple(map_js(page, f"""
+        const r = view.canvas_view.el.getBoundingClientRect();
+        return [r.left + view.frame.x_scale.compute({x}), r.top + view.frame.y_scale.compute({y})];"""))
+
+
+@pytest.fixture(scope="module")
+def synthetic_report(tmp_path_factory):
+    out = synth.make_output_folder(tmp_path_factory.mktemp("browser"), 400, seed=1)
+    return out, write_report(out)
+
+
+@pytest.fixture(scope="module")
+def hostile_report(tmp_path_factory):
+    out = synth.make_output_folder(tmp_path_factory.mktemp("hostile_browser"), 48, hostile=True)
+    return out, write_report(out)
+
+
+@pytest.fixture
+def opened(browser, synthetic_report):
+    page = Opened(browser, synthetic_report[1])
+    yield page
+    page.close()
+
+
+def test_opens_offline_clean_with_one_glyph_per_image(opened, synthetic_report):
+    out, _ = synthetic_report
+    assert opened.errors == []
+    assert opened.outside_requests() == []
+    ic = pd.read_parquet(out / "image_contexts.parquet")
+    n = map_js(opened.page, "return src.get_length();")
+    assert n == len(ic) == 400
+    # The glyph draws from that source through WebGL.
+    assert map_js(opened.page, "return fig.output_backend;") == "webgl"
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    opened.page.locator("#overview").screenshot(path=str(ARTIFACTS / "synthetic-overview.png"))
+    opened.page.locator("#context-map").screenshot(path=str(ARTIFACTS / "synthetic-map.png"))
+
+
+def test_hovering_a_point_shows_its_thumbnail(opened, synthetic_report):
+    out, _ = synthetic_report
+    ic = pd.read_parquet(out / "image_contexts.parquet")
+    images = pd.read_parquet(out / "images.parquet").set_index("image_id")
+    # The point farthest from the others' centre is least likely to be covered by a neighbour.
+    xy = ic[["map_x", "map_y"]].to_numpy()
+    k = int(np.argmax(np.linalg.norm(xy - xy.mean(axis=0), axis=1)))
+    sx, sy = screen_xy(opened.page, *xy[k])
+    opened.page.mouse.move(sx - 30, sy - 30)
+    opened.page.mouse.move(sx, sy, steps=5)
+    card = opened.page.locator("#hover-card")
+    card.wait_for(state="visible", timeout=5000)
+    src = card.locator("img").get_attribute("src")
+    assert src.startswith("data:image/jpeg;base64,")
+    text = card.inner_text()
+    assert images.loc[ic["image_id"].iloc[k], "brand"] in text
+    assert "context:" in text
+    opened.page.mouse.move(5, 5)
+    card.wait_for(state="hidden", timeout=5000)
+
+
+def test_colour_selector_recolours_the_points(opened, synthetic_report):
+    out, _ = synthetic_report
+    before = map_js(opened.page, "return Array.from(src.data.color);")
+    contexts = pd.read_parquet(out / "contexts.parquet")
+    assert len(set(before)) == int((contexts["context_id"] >= 0).sum()) + 1  # one colour per context, plus unassigned
+    opened.page.select_option("#colour-select", "brand")
+    after = map_js(opened.page, "return Array.from(src.data.color);")
+    assert after != before
+    ic = pd.read_parquet(out / "image_contexts.parquet")
+    brands = pd.read_parquet(out / "images.parquet").set_index("image_id").loc[ic["image_id"], "brand"].to_numpy()
+    # Same brand <=> same colour.
+    pairs = set(zip(brands, after))
+    assert len(pairs) == len(set(brands)) == len(set(after))
+    opened.page.select_option("#colour-select", "attr:0")
+    ramp = map_js(opened.page, "return Array.from(src.data.color);")
+    assert len(set(ramp)) > 20  # a continuous scale gives many shades
+    assert "probability" in opened.page.locator("#map-legend").inner_text()
+
+
+def test_box_selection_fills_the_gallery(opened, synthetic_report):
+    out, _ = synthetic_report
+    ic = pd.read_parquet(out / "image_contexts.parquet")
+    images = pd.read_parquet(out / "images.parquet").set_index("image_id")
+    # A box over the left half of the plot frame (in page pixels), and the same box in data units.
+    opened.page.locator("#map-frame").scroll_into_view_if_needed()
+    ax, ay, bx, by, x0, x1, y0, y1 = map_js(opened.page, """
+        const r = view.canvas_view.el.getBoundingClientRect(); const f = view.frame.bbox;
+        const left = f.left + 3, right = f.left + f.width / 2, top = f.top + 3, bottom = f.bottom - 3;
+        return [r.left + left, r.top + top, r.left + right, r.top + bottom,
+                view.frame.x_scale.invert(left), view.frame.x_scale.invert(right),
+                view.frame.y_scale.invert(bottom), view.frame.y_scale.invert(top)];""")
+    inside = ic[(ic["map_x"] >= x0) & (ic["map_x"] <= x1) & (ic["map_y"] >= y0) & (ic["map_y"] <= y1)]
+    assert 0 < len(inside) < len(ic)
+    opened.page.mouse.move(ax, ay)
+    opened.page.mouse.down()
+    opened.page.mouse.move(bx, by, steps=8)
+    opened.page.mouse.up()
+    opened.page.wait_for_function("document.querySelectorAll('#gallery figure').length > 0", timeout=5000)
+    selected = map_js(opened.page, "return src.selected.indices.length;")
+    # Points within a pixel of the box edge may go either way.
+    assert abs(selected - len(inside)) <= 3
+    figures = opened.page.locator("#gallery figure").count()
+    assert figures == min(selected, 240)
+    counts = opened.page.locator("#gallery-counts .brand-count").all_inner_texts()
+    assert sum(int(t.rsplit(":", 1)[1]) for t in counts) == selected
+    expected = images.loc[inside["image_id"], "brand"].value_counts()
+    for t in counts:
+        brand, n = t.rsplit(":", 1)
+        assert abs(int(n) - expected.get(brand.strip(), 0)) <= 3
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    opened.page.locator("#context-map").screenshot(path=str(ARTIFACTS / "synthetic-map-selection.png"))
+
+
+def test_filters_hide_a_brand(opened, synthetic_report):
+    out, _ = synthetic_report
+    images = pd.read_parquet(out / "images.parquet")
+    first = opened.page.locator("#filter-brand input").first
+    brand = opened.page.locator("#filter-brand label").first.inner_text().strip()
+    first.uncheck()
+    shown = map_js(opened.page, "return doc.get_model_by_name('map_filter').booleans.filter(Boolean).length;")
+    usable = images[images["status"] == "ok"]
+    assert shown == int((usable["brand"] != brand).sum())
+    assert f"{shown:,} of 400" in opened.page.locator("#filter-count").inner_text()
+
+
+def test_click_through_from_a_signature_context_shows_its_photos(opened, synthetic_report):
+    out, _ = synthetic_report
+    sig = pd.read_parquet(out / "signature_contexts.parquet").sort_values(["brand", "index"], ascending=[True, False])
+    row = sig.iloc[0]
+    opened.page.locator("#contexts tr.photo-row").first.click()
+    dialog = opened.page.locator("#photo-dialog")
+    dialog.wait_for(state="visible")
+    assert opened.page.locator("#photo-dialog-title").inner_text() == f"{row['brand']} · {row['context']}"
+    assert dialog.locator("figure").count() == int(row["count"])
+    opened.page.keyboard.press("Escape")
+    dialog.wait_for(state="hidden")
+
+
+def test_brand_view_follows_the_picker(opened, synthetic_report):
+    out, _ = synthetic_report
+    opened.page.select_option("#brand-select", index=2)
+    brand = opened.page.locator("#brand-select option").nth(2).inner_text()
+    assert opened.page.locator(".bv-brand").first.inner_text() == brand
+    bc = pd.read_parquet(out / "brand_contexts.parquet")
+    rows = bc[(bc["brand"] == brand) & (bc["source"] == "all") & (bc["context_id"] >= 0)]
+    assert opened.page.locator("#bv-contexts .bv-row").count() == len(rows)
+    top = rows.sort_values("share", ascending=False).iloc[0]
+    assert opened.page.locator("#bv-contexts .bv-index").first.inner_text() == f"{top['index']:.0f}"
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    opened.page.locator("#brand-view").screenshot(path=str(ARTIFACTS / "synthetic-brand-view.png"))
+
+
+def test_csv_download_equals_the_table_on_disk(opened, synthetic_report):
+    out, _ = synthetic_report
+    with opened.page.expect_download() as info:
+        opened.page.locator('#attributes button.csv[data-table="attribute_shares"]').click()
+    download = info.value
+    assert download.suggested_filename == "attribute_shares.csv"
+    got = pd.read_csv(io.BytesIO(Path(download.path()).read_bytes()), encoding="utf-8-sig", keep_default_na=False)
+    want = pd.read_parquet(out / "attribute_shares.parquet")
+    assert list(got.columns) == list(want.columns)
+    for col in ("n", "positives", "share", "share_low", "share_high"):
+        np.testing.assert_allclose(got[col].to_numpy(float), want[col].to_numpy(float), rtol=1e-12)
+    assert got["brand"].tolist() == want["brand"].fillna("").tolist()
+    assert opened.outside_requests() == []
+
+
+def test_hostile_names_run_nothing_and_show_as_text(browser, hostile_report):
+    out, path = hostile_report
+    page = Opened(browser, path)
+    try:
+        p = page.page
+        # Hover every kind of text, open the hostile brand and a context's photos.
+        p.select_option("#brand-select", label=synth.HOSTILE_BRAND)
+        p.hover("#bv-attributes .bv-attr-name >> nth=0")
+        p.locator("#contexts .show-photos").first.click()
+        p.locator("#photo-dialog").wait_for(state="visible")
+        p.keyboard.press("Escape")
+        ic = pd.read_parquet(out / "image_contexts.parquet")
+        ids = pd.read_parquet(out / "images.parquet").set_index("image_id")
+        k = int(np.flatnonzero(ic["image_id"].map(ids["relpath"]).str.endswith(synth.HOSTILE_FILE))[0])
+        sx, sy = screen_xy(p, ic["map_x"].iloc[k], ic["map_y"].iloc[k])
+        p.mouse.move(sx, sy, steps=3)
+        p.wait_for_timeout(300)
+        p.mouse.move(5, 5)
+        p.wait_for_timeout(200)
+        assert page.dialogs == []
+        assert page.errors == []
+        assert page.outside_requests() == []
+        body = p.locator("body").inner_text()
+        for raw in (synth.HOSTILE_BRAND, synth.HOSTILE_ATTRIBUTE, synth.HOSTILE_CONTEXT, synth.HOSTILE_PROMPT.strip()):
+            assert raw in body, raw
+        # None of the injected markup became an element.
+        injected = p.evaluate("""() => ({
+            img_x: document.querySelectorAll('img[src="x"]').length,
+            iframes: document.querySelectorAll('iframe').length,
+            bold: document.querySelectorAll('b[onmouseover]').length,
+            svg_onload: document.querySelectorAll('svg[onload]').length,
+            scripts: Array.from(document.scripts).filter(s => s.textContent.includes('alert(1)') && !s.type).length,
+        })""")
+        assert injected == {"img_x": 0, "iframes": 0, "bold": 0, "svg_onload": 0, "scripts": 0}
+        ARTIFACTS.mkdir(parents=True, exist_ok=True)
+        p.locator("#brand-view").screenshot(path=str(ARTIFACTS / "hostile-brand-view.png"))
+    finally:
+        page.close()
+
+
+def test_demo_report_in_the_browser(browser, request):
+    """The demo run (shared session fixture ``demo_run``): size, clean load, map, screenshots."""
+    try:
+        demo = request.getfixturevalue("demo_run")
+    except pytest.FixtureLookupError:
+        pytest.skip("no demo_run fixture in tests/conftest.py yet")
+    out = Path(getattr(demo, "output", None) or demo["output"] if isinstance(demo, dict) else getattr(demo, "output", demo))
+    path = out / "report.html"
+    assert path.is_file(), f"the demo run wrote no report at {path}"
+    size = path.stat().st_size
+    assert size < 15 * 1024 * 1024, f"demo report is {size / 1e6:.1f} MB"
+    page = Opened(browser, path)
+    try:
+        assert page.errors == []
+        assert page.outside_requests() == []
+        ic = pd.read_parquet(out / "image_contexts.parquet")
+        assert map_js(page.page, "return src.get_length();") == len(ic)
+        ARTIFACTS.mkdir(parents=True, exist_ok=True)
+        page.page.screenshot(path=str(ARTIFACTS / "demo-overview.png"))
+        page.page.locator("#context-map").screenshot(path=str(ARTIFACTS / "demo-map.png"))
+        page.page.locator("#brand-view").screenshot(path=str(ARTIFACTS / "demo-brand-view.png"))
+    finally:
+        page.close()
