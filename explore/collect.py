@@ -126,7 +126,8 @@ def open_rgb(path: str | Path, draft_size: int | None = None, max_pixels: int = 
     draft_size : when given, JPEGs are decoded at a reduced scale (1/2, 1/4 or
         1/8, libjpeg's DCT scaling) chosen so both sides stay at least this
         many pixels. Much cheaper than a full decode when the model input is
-        small. Other formats are decoded in full.
+        small. Other formats are decoded in full, then shrunk by a whole
+        factor (box filter) while both sides stay at least this size.
     max_pixels : images larger than this are refused (decompression bombs).
 
     Returns
@@ -200,6 +201,10 @@ def _decode(data: bytes, draft_size: int | None, max_pixels: int) -> tuple[Image
         if orientation in (2, 3, 4, 5, 6, 7, 8):
             image = ImageOps.exif_transpose(image)
         rgb = to_rgb(image)
+        if draft_size:  # other formats (and JPEGs libjpeg could not scale enough): box-reduce
+            factor = min(rgb.size) // draft_size
+            if factor >= 2:
+                rgb = rgb.reduce(factor)
     except Exception as exc:
         raise ImageProblem("corrupt", f"the image cannot be converted to RGB: {exc}") from None
     if orientation in (5, 6, 7, 8):  # these orientations swap the sides

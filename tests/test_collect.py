@@ -314,6 +314,10 @@ def test_draft_decoding_keeps_at_least_the_requested_size(tmp_path):
     assert full.size == (1600, 1200)
     reference = np.asarray(full.resize((800, 600), Image.Resampling.BOX), dtype=float)
     assert np.abs(np.asarray(small, dtype=float) - reference).mean() < 3
+    # Other formats are shrunk by a whole factor, both sides staying >= the draft size.
+    png = save(smooth_photo(3, (1600, 1200)), tmp_path / "big.png")
+    assert open_rgb(png, draft_size=448).size == (800, 600)  # factor 1200 // 448 = 2
+    assert open_rgb(png, draft_size=100).size == (134, 100)  # factor 12, sides rounded up
 
 
 # --------------------------------------------------------------------------
