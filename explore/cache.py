@@ -53,6 +53,21 @@ def encoder_folder_name(encoder_id: str) -> str:
     return f"{slug}-{hashlib.sha1(encoder_id.encode('utf-8')).hexdigest()[:10]}"
 
 
+def check_not_busy(folder: str | Path) -> None:
+    """Raise ``CacheBusy`` now if another run holds the cache at ``folder``.
+
+    A courtesy for commands that load a model before embedding: they can
+    refuse at once instead of after the model load. ``EmbeddingCache.open``
+    still takes the lock itself, so this check is never what protects the cache.
+    """
+    folder = Path(folder)
+    if not (folder / "lock").exists():
+        return
+    probe = EmbeddingCache(folder, "probe")
+    probe._lock()
+    probe.close()
+
+
 class EmbeddingCache:
     """Vectors of one encoder, stored under ``folder``; use as a context manager.
 

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from explore.cache import CacheBusy, CacheError, EmbeddingCache, encoder_folder_name
+from explore.cache import CacheBusy, CacheError, EmbeddingCache, check_not_busy, encoder_folder_name
 
 
 def vectors(start: int, n: int, d: int = 6):
@@ -69,7 +69,11 @@ def test_second_open_is_refused_while_the_first_holds_the_lock(tmp_path):
             EmbeddingCache(tmp_path, "enc").open()
         with pytest.raises(CacheBusy):  # the lock covers the whole cache, every encoder
             EmbeddingCache(tmp_path, "another-encoder").open()
-    with EmbeddingCache(tmp_path, "enc"):  # released on close
+        with pytest.raises(CacheBusy):  # the early check before loading a model
+            check_not_busy(tmp_path)
+    check_not_busy(tmp_path)  # released on close; the check itself keeps no lock:
+    check_not_busy(tmp_path / "never-used")
+    with EmbeddingCache(tmp_path, "enc"):
         pass
 
 
@@ -90,6 +94,8 @@ def test_lock_held_by_another_process_and_freed_by_its_death(tmp_path):
         assert holder.stdout.readline().strip() == "holding"
         with pytest.raises(CacheBusy, match=f"process {holder.pid}"):
             EmbeddingCache(tmp_path, "enc").open()
+        with pytest.raises(CacheBusy, match=f"process {holder.pid}"):
+            check_not_busy(tmp_path)
     finally:
         holder.send_signal(signal.SIGKILL)
         holder.wait()
