@@ -231,6 +231,36 @@ def pair_probabilities(
     return _sigmoid(np.float32(scale) * margin + np.float32(bias))
 
 
+def platt_common_slope(margins: Sequence[np.ndarray], labels: Sequence[np.ndarray]) -> float:
+    """One logistic slope on the margin ``s_pos - s_neg`` shared by several prompt pairs.
+
+    Platt scaling (Platt 1999) with an intercept per pair and a common slope,
+    fitted by maximum likelihood (unpenalised logistic regression). This is
+    how an encoder family's ``logit_scale`` can be calibrated from hand labels
+    (it is how the bundled encoder's scale was chosen, on the demo scenario).
+
+    Parameters
+    ----------
+    margins : one (n_i,) array of margins per prompt pair.
+    labels : one (n_i,) 0/1 array per prompt pair.
+
+    Returns
+    -------
+    The common slope.
+    """
+    from sklearn.linear_model import LogisticRegression
+
+    blocks, ys = [], []
+    for i, (m, y) in enumerate(zip(margins, labels)):
+        onehot = np.zeros((len(m), len(margins)))
+        onehot[:, i] = 1.0
+        blocks.append(np.column_stack([np.asarray(m, dtype=np.float64), onehot]))
+        ys.append(np.asarray(y).astype(int))
+    model = LogisticRegression(C=1e8, fit_intercept=False, max_iter=10000, tol=1e-10)
+    model.fit(np.vstack(blocks), np.concatenate(ys))
+    return float(model.coef_[0, 0])
+
+
 def probe_probabilities(vectors: np.ndarray, coef: Sequence[float], intercept: float) -> np.ndarray:
     """Probabilities from a saved linear probe: sigmoid(X w + b)."""
     w = np.asarray(coef, dtype=np.float32)

@@ -187,6 +187,39 @@ def test_prompt_ensembling_and_probabilities_by_hand():
     assert np.all((big >= 0) & (big <= 1)) and not np.isnan(big).any()
 
 
+def test_platt_common_slope_recovers_a_planted_scale_and_matches_statsmodels():
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(9)
+    margins, labels = [], []
+    for offset in (-0.05, 0.0, 0.08):  # three prompt pairs, each with its own offset
+        m = rng.normal(0, 0.1, 2000)
+        labels.append((rng.random(2000) < 1 / (1 + np.exp(-(12.0 * m + offset * 12.0)))).astype(int))
+        margins.append(m)
+    slope = A.platt_common_slope(margins, labels)
+    # Reference: statsmodels Logit maximum likelihood on the same design (slope + one
+    # intercept per pair); and the planted slope 12 within sampling error.
+    design = np.zeros((6000, 4))
+    design[:, 0] = np.concatenate(margins)
+    for i in range(3):
+        design[i * 2000:(i + 1) * 2000, i + 1] = 1
+    ref = sm.Logit(np.concatenate(labels), design).fit(disp=0)
+    assert slope == pytest.approx(ref.params[0], rel=1e-3)
+    assert slope == pytest.approx(12.0, abs=3 * ref.bse[0])
+
+
+def test_bundled_bias_is_zero_so_swapping_sides_gives_one_minus_p():
+    from explore.encoders.bundled import BUNDLED_LOGIT_BIAS, BUNDLED_LOGIT_SCALE
+
+    images = _unit(np.random.default_rng(1).normal(size=(50, 16)))
+    pos, neg = _unit(np.ones(16)), _unit(np.arange(16.0))
+    p = A.pair_probabilities(images, pos, neg, BUNDLED_LOGIT_SCALE, BUNDLED_LOGIT_BIAS)
+    q = A.pair_probabilities(images, neg, pos, BUNDLED_LOGIT_SCALE, BUNDLED_LOGIT_BIAS)
+    # A two-way softmax is symmetric in its two classes (Radford et al. 2021 scoring).
+    np.testing.assert_allclose(p + q, 1.0, atol=1e-6)
+    assert 1.0 < BUNDLED_LOGIT_SCALE < 100.0
+
+
 @pytest.fixture(scope="module")
 def random_open_clip():
     """The smallest ViT config in open_clip, random weights (nothing downloaded)."""

@@ -44,11 +44,13 @@ BUNDLED_VERSION = 1
 DEFAULT_TOP_T = 10
 #: The phrase embedded for each ImageNet class; ``{name}`` is timm's class description.
 DEFAULT_LABEL_TEMPLATE = "a photo of a {name}"
-#: Placeholder scale/bias for p = sigmoid(scale * (s_pos - s_neg) + bias). ConSE
-#: cosine differences in the MiniLM space are much smaller than CLIP's, hence a
-#: scale near CLIP's order of magnitude rather than 1. NOT calibrated yet: the
-#: attributes stage is expected to replace these with measured values.
-BUNDLED_LOGIT_SCALE = 25.0
+#: Scale and bias for p = sigmoid(scale * (s_pos - s_neg) + bias). The scale is a
+#: Platt fit (Platt 1999: logistic regression of labels on the margin s_pos - s_neg,
+#: one slope shared by all pairs, an intercept per pair) on the demo scenario's
+#: planted levels, over the prompt pairs with signal (image AUC > 0.6): slope 9.8,
+#: pairs alone 6 to 17. The bias is 0 so that swapping the two sides gives 1 - p,
+#: as a two-way softmax does. Refit: explore.attributes.platt_common_slope.
+BUNDLED_LOGIT_SCALE = 10.0
 BUNDLED_LOGIT_BIAS = 0.0
 
 IMAGE_ARCH = "efficientnet_lite0"
