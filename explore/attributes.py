@@ -809,6 +809,11 @@ def read_labels(
     by_rel = {str(r): str(i) for r, i in zip(images.get("relpath", []), images["image_id"])}
     by_path = {str(Path(p).resolve()): str(i) for p, i in zip(images["path"], images["image_id"])}
     status = dict(zip(images["image_id"].astype(str), images["status"].astype(str)))
+    kept = (
+        dict(zip(images["image_id"].astype(str), images["duplicate_of"].fillna("").astype(str)))
+        if "duplicate_of" in images.columns
+        else {}
+    )
     out, warnings = [], []
     for row_number, row in enumerate(table.itertuples(index=False), start=2):  # row 1 is the header
         image = str(getattr(row, "image")).strip()
@@ -830,6 +835,8 @@ def read_labels(
         if image_id is None:
             warnings.append(f"{where}: row {row_number}: image '{image}' is not in the study's images")
             continue
+        if status.get(image_id) == "duplicate" and status.get(kept.get(image_id, "")) == "ok":
+            image_id = kept[image_id]  # same content as a kept image: the label applies to it
         if status.get(image_id) != "ok":
             warnings.append(
                 f"{where}: row {row_number}: image '{image}' is not usable ({status.get(image_id)})"

@@ -490,6 +490,9 @@ def test_read_labels_matches_ids_relpaths_and_paths(tmp_path):
             "status": ["ok", "ok", "ok", "unreadable"],
         }
     )
+    dup = pd.DataFrame({"image_id": ["id5"], "path": [str(tmp_path / "copy.jpg")], "relpath": ["copy.jpg"],
+                        "status": ["duplicate"], "duplicate_of": ["id2"]})
+    images = pd.concat([images, dup], ignore_index=True)
     table = pd.DataFrame(
         {
             "image": ["id1", "A/consumer/1.jpg", str(tmp_path / "A/consumer/2.jpg"), "id4", "nope.jpg", "id1"],
@@ -499,6 +502,10 @@ def test_read_labels_matches_ids_relpaths_and_paths(tmp_path):
     )
     labels, warnings = A.read_labels(table, images, ["sunny"], where="labels.csv", base=tmp_path)
     assert labels.image_id.tolist() == ["id1", "id2", "id3"] and labels.label.tolist() == [1, 0, 1]
+    # A label on a duplicate file goes to the kept copy.
+    labels, _ = A.read_labels(pd.DataFrame({"image": ["copy.jpg"], "attribute": ["sunny"], "label": [0]}),
+                              images, ["sunny"], "labels.csv")
+    assert labels.image_id.tolist() == ["id2"]
     assert len(warnings) == 2 and "row 5" in warnings[0] and "unreadable" in warnings[0] and "row 6" in warnings[1]
 
     with pytest.raises(StudyError, match=r"labels.csv: row 2: attribute 'rainy' is not in the study"):
