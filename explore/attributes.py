@@ -538,9 +538,10 @@ def attribute_shares(
     -------
     attribute_shares table: level (brand/category), brand ("" on category rows),
     category, source (consumer/owned/all), attribute, n, positives, share,
-    share_low, share_high (95 % Wilson), mean_probability, mean_low, mean_high
-    (95 % percentile bootstrap, resampling within each brand x source cell),
-    threshold, encoder_id.
+    share_low, share_high (95 % Wilson), share_index (100 x share / the category's
+    share for the same source and attribute; NaN when that is 0),
+    mean_probability, mean_low, mean_high (95 % percentile bootstrap,
+    resampling within each brand x source cell), threshold, encoder_id.
     """
     columns = [
         "level", "brand", "category", "source", "attribute", "n", "positives", "share",
@@ -595,7 +596,13 @@ def attribute_shares(
                  low[j], high[j], means[j], mean_low[j], mean_high[j],
                  float(threshold[name]), encoder_id[name])
             )
-    return pd.DataFrame(rows, columns=columns)
+    table = pd.DataFrame(rows, columns=columns)
+    # index = 100 x brand share / category share, same source (common marketing practice).
+    category = table[table["level"] == "category"].set_index(["category", "source", "attribute"])["share"]
+    base = category.reindex(pd.MultiIndex.from_frame(table[["category", "source", "attribute"]])).to_numpy()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        table.insert(table.columns.get_loc("share_high") + 1, "share_index", np.where(base > 0, 100 * table["share"] / base, np.nan))
+    return table
 
 
 def attribute_gaps(shares: pd.DataFrame) -> pd.DataFrame:

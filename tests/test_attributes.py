@@ -344,6 +344,11 @@ def test_attribute_tables_counts_shares_and_gaps():
         assert row.mean_probability == pytest.approx(frame.probability.mean(), rel=1e-5)
         assert row.share_low <= row.share <= row.share_high
         assert row.mean_low <= row.mean_probability <= row.mean_high
+    # index = 100 x brand share / category share (DESIGN.md vocabulary; common marketing practice).
+    a_consumer = shares[(shares.brand == "A") & (shares.source == "consumer")].iloc[0]
+    cat_consumer = shares[(shares.level == "category") & (shares.source == "consumer")].iloc[0]
+    assert a_consumer["share_index"] == pytest.approx(100 * a_consumer.share / cat_consumer.share)
+    assert (shares[shares.level == "category"]["share_index"] == 100).all()
     cat_all = shares[(shares.level == "category") & (shares.source == "all")].iloc[0]
     assert cat_all.n == len(images) and cat_all.brand == ""
     assert cat_all.positives == long.positive.sum()
