@@ -84,6 +84,16 @@ def map_js(page, body: str):
     )
 
 
+def shoot(page, selector: str, name: str) -> None:
+    """Screenshot of one section as laid out on the full page (the sticky bar stays at the top)."""
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    box = page.evaluate(
+        f"() => {{ const r = document.querySelector('{selector}').getBoundingClientRect();"
+        " return {x: r.left + window.scrollX, y: r.top + window.scrollY, width: r.width, height: r.height}; }"
+    )
+    page.screenshot(path=str(ARTIFACTS / name), full_page=True, clip=box)
+
+
 def screen_xy(page, x: float, y: float) -> tuple[float, float]:
     """Page coordinates of the data point (x, y) on the context map."""
     page.locator("#map-frame").scroll_into_view_if_needed()
@@ -120,9 +130,8 @@ def test_opens_offline_clean_with_one_glyph_per_image(opened, synthetic_report):
     assert n == len(ic) == 400
     # The glyph draws from that source through WebGL.
     assert map_js(opened.page, "return fig.output_backend;") == "webgl"
-    ARTIFACTS.mkdir(parents=True, exist_ok=True)
-    opened.page.locator("#overview").screenshot(path=str(ARTIFACTS / "synthetic-overview.png"))
-    opened.page.locator("#context-map").screenshot(path=str(ARTIFACTS / "synthetic-map.png"))
+    shoot(opened.page, "#overview", "synthetic-overview.png")
+    shoot(opened.page, "#context-map", "synthetic-map.png")
 
 
 def test_hovering_a_point_shows_its_thumbnail(opened, synthetic_report):
@@ -195,8 +204,7 @@ def test_box_selection_fills_the_gallery(opened, synthetic_report):
     for t in counts:
         brand, n = t.rsplit(":", 1)
         assert abs(int(n) - expected.get(brand.strip(), 0)) <= 3
-    ARTIFACTS.mkdir(parents=True, exist_ok=True)
-    opened.page.locator("#context-map").screenshot(path=str(ARTIFACTS / "synthetic-map-selection.png"))
+    shoot(opened.page, "#context-map", "synthetic-map-selection.png")
 
 
 def test_filters_hide_a_brand(opened, synthetic_report):
@@ -234,8 +242,7 @@ def test_brand_view_follows_the_picker(opened, synthetic_report):
     assert opened.page.locator("#bv-contexts .bv-row").count() == len(rows)
     top = rows.sort_values("share", ascending=False).iloc[0]
     assert opened.page.locator("#bv-contexts .bv-index").first.inner_text() == f"{top['index']:.0f}"
-    ARTIFACTS.mkdir(parents=True, exist_ok=True)
-    opened.page.locator("#brand-view").screenshot(path=str(ARTIFACTS / "synthetic-brand-view.png"))
+    shoot(opened.page, "#brand-view", "synthetic-brand-view.png")
 
 
 def test_csv_download_equals_the_table_on_disk(opened, synthetic_report):
@@ -287,8 +294,7 @@ def test_hostile_names_run_nothing_and_show_as_text(browser, hostile_report):
             scripts: Array.from(document.scripts).filter(s => s.textContent.includes('alert(1)') && !s.type).length,
         })""")
         assert injected == {"img_x": 0, "iframes": 0, "bold": 0, "svg_onload": 0, "scripts": 0}
-        ARTIFACTS.mkdir(parents=True, exist_ok=True)
-        p.locator("#brand-view").screenshot(path=str(ARTIFACTS / "hostile-brand-view.png"))
+        shoot(p, "#brand-view", "hostile-brand-view.png")
     finally:
         page.close()
 
@@ -310,9 +316,7 @@ def test_demo_report_in_the_browser(browser, request):
         assert page.outside_requests() == []
         ic = pd.read_parquet(out / "image_contexts.parquet")
         assert map_js(page.page, "return src.get_length();") == len(ic)
-        ARTIFACTS.mkdir(parents=True, exist_ok=True)
-        page.page.screenshot(path=str(ARTIFACTS / "demo-overview.png"))
-        page.page.locator("#context-map").screenshot(path=str(ARTIFACTS / "demo-map.png"))
-        page.page.locator("#brand-view").screenshot(path=str(ARTIFACTS / "demo-brand-view.png"))
+        for section in ("overview", "brand-view", "context-map", "contexts", "brand-by-context", "attributes", "comparisons"):
+            shoot(page.page, f"#{section}", f"demo-{section}.png")
     finally:
         page.close()

@@ -229,12 +229,19 @@ def attribute_chart(attribute: str, shares: pd.DataFrame, gaps: pd.DataFrame | N
         tools="",
         toolbar_location=None,
     )
-    p.hbar(y="factor", right="share", left=0, height=0.72, source=source, fill_color="color", line_color=None,
-           fill_alpha=0.85)
+    bars = [p.hbar(y="factor", right="share", left=0, height=0.72, source=source, fill_color="color",
+                   line_color=None, fill_alpha=0.85)]
     p.add_layout(Whisker(source=source, base="factor", lower="low", upper="high", dimension="width",
                          line_color=INK, line_width=1.2, upper_head=None, lower_head=None))
-    p.add_tools(HoverTool(tooltips=[("brand", "@brand"), ("source", "@source"), ("share", "@share_pct %"),
-                                    ("95 % interval", "@interval"), ("positive photos", "@positives of @n")]))
+    tips = [("brand", "@brand"), ("source", "@source"), ("share", "@share_pct %"),
+            ("95 % interval", "@interval"), ("positive photos", "@positives of @n")]
+    if "mean_probability" in rows:
+        source.data["mean"] = rows["mean_probability"].astype(float)
+        source.data["mean_text"] = [f"{v:.2f}" for v in rows["mean_probability"].astype(float)]
+        bars.append(p.scatter("mean", "factor", source=source, size=7, fill_color="#ffffff", line_color=INK,
+                              line_width=1.3))
+        tips.append(("mean probability", "@mean_text"))
+    p.add_tools(HoverTool(renderers=bars, tooltips=tips))
     if gaps is not None and len(gaps) and "significant" in gaps and len(sources) == 2:
         sig = gaps[gaps["significant"].astype(bool) & gaps["brand"].astype(str).isin(brands_order)]
         if len(sig):
@@ -380,7 +387,7 @@ def vector_map_plot(vector_map: pd.DataFrame, name: str):
         src = ColumnDataSource(dict(x=g["x"].astype(float), y=g["y"].astype(float), brand=g["brand"],
                                     n=g.get("n_images", pd.Series(0, index=g.index)),
                                     source=[source] * len(g)))
-        renderers.append(p.scatter("x", "y", source=src, marker=marker, size=10,
+        renderers.append(p.scatter("x", "y", source=src, marker=marker, size=13 if source == "all" else 10,
                                    fill_color=SOURCE_COLOURS[source], line_color="#ffffff",
                                    legend_label=f"{source} photos"))
         if source == "all":

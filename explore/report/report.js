@@ -34,7 +34,7 @@
     var k = Math.max(s.lastIndexOf("/"), s.lastIndexOf("\\"));
     return k >= 0 ? s.slice(k + 1) : s;
   }
-  function pct(v) { return v === null || v === undefined ? "–" : (100 * v).toFixed(1) + " %"; }
+  function pct(v) { return v === null || v === undefined ? "–" : (100 * v).toFixed(1) + "\u00a0%"; }
   function contextName(cid) {
     var c = contextById[cid];
     return c ? c.name : "unassigned";
@@ -335,7 +335,7 @@
   // ------------------------------------------------------------------ brand view
   function attrSvg(rows) {
     // rows: [{label, share, low, high, colour}]
-    var rowH = 16, width = 300, left = 92, right = 44;
+    var rowH = 16, width = 300, left = 92, right = 50;
     var svg = svgEl("svg", { viewBox: "0 0 " + width + " " + (rows.length * rowH + 4), role: "img" });
     rows.forEach(function (r, j) {
       var y = j * rowH + 2;
@@ -418,6 +418,9 @@
       bar.appendChild(fill);
       barBox.appendChild(bar);
       barBox.appendChild(el("div", "bv-share", pct(c.share) + " · " + (c.count === null ? "–" : c.count) + " photos"));
+      var bySource = view.contexts.filter(function (o) { return o.id === c.id && o.source !== "all"; })
+        .map(function (o) { return o.source + "\u00a0" + (o.share === null ? "–" : Math.round(100 * o.share) + "\u00a0%"); });
+      if (bySource.length) barBox.appendChild(el("div", "bv-share", bySource.join(" · ")));
       row.appendChild(barBox);
       row.appendChild(indexChip(c.index));
       box.appendChild(row);
@@ -429,11 +432,29 @@
       list.textContent = "";
       var items = view[key] || [];
       if (!items.length) { list.appendChild(el("p", "fine", "None for this brand.")); return; }
-      items.slice().sort(function (a, b) { return (b.index || 0) - (a.index || 0); }).forEach(function (it) {
+      // One entry per context; the sources in which it stands out are listed with their index.
+      var groups = {}, order = [];
+      items.forEach(function (it) {
+        var key = it.id === null ? it.name : it.id;
+        if (!groups[key]) { groups[key] = []; order.push(key); }
+        groups[key].push(it);
+      });
+      var rank = { all: 0, consumer: 1, owned: 2 };
+      order.map(function (key) {
+        var g = groups[key].slice().sort(function (a, b) { return (rank[a.source] || 0) - (rank[b.source] || 0); });
+        return { main: g[0], all: g };
+      }).sort(function (a, b) { return (b.main.index || 0) - (a.main.index || 0); }).forEach(function (grp) {
+        var it = grp.main;
         var d = el("div", "bv-item");
         d.appendChild(el("b", null, "index " + (it.index === null ? "–" : Math.round(it.index))));
-        d.appendChild(document.createTextNode(it.name + (it.source && it.source !== "all" ? " (" + it.source + ")" : "")));
-        d.appendChild(el("div", "fine", pct(it.share) + " of the brand's photos" + (it.count !== null ? " · " + it.count + " photos" : "")));
+        d.appendChild(document.createTextNode(it.name));
+        d.appendChild(el("div", "fine", pct(it.share) + " of the brand's" + (it.source && it.source !== "all" ? " " + it.source : "") +
+          " photos" + (it.count !== null ? " · " + it.count + " photos" : "")));
+        if (grp.all.length > 1 || (it.source && it.source !== "all")) {
+          d.appendChild(el("div", "fine", "stands out in: " + grp.all.map(function (o) {
+            return (o.source || "all") + " photos (" + (o.index === null ? "–" : Math.round(o.index)) + ")";
+          }).join(", ")));
+        }
         d.title = "show these photos";
         d.addEventListener("click", function () { openPhotos(brand, it.id === null ? null : +it.id); });
         list.appendChild(d);
