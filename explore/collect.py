@@ -151,7 +151,7 @@ def _read_bytes(path: Path) -> bytes:
     except PermissionError:
         raise ImageProblem("unreadable", "permission denied when reading the file") from None
     except FileNotFoundError:
-        raise ImageProblem("missing", "the file no longer exists") from None
+        raise ImageProblem("missing", "the file no longer exists (or is a broken link)") from None
     except IsADirectoryError:
         raise ImageProblem("bad_row", "the path is a folder, not a file") from None
     except OSError as exc:

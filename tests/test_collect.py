@@ -99,6 +99,7 @@ def test_every_bad_file_kind_gets_its_status_and_reason(tmp_path, monkeypatch):
     save(smooth_photo(4), root / "Alpha/loose.png")
     save(smooth_photo(5), root / "Alpha/press/kit.png")
     (root / "Alpha/owned/.DS_Store").write_bytes(b"\0\0\0\1Bud1")
+    (root / "Alpha/owned/gone.jpg").symlink_to(root / "Alpha/owned/deleted.jpg")
 
     real_open = builtins.open
 
@@ -120,6 +121,7 @@ def test_every_bad_file_kind_gets_its_status_and_reason(tmp_path, monkeypatch):
         "Alpha/consumer/notes.jpg": "not_image",
         "Alpha/consumer/bomb.png": "too_large",
         "Alpha/owned/locked.png": "unreadable",
+        "Alpha/owned/gone.jpg": "missing",
         "stray.png": "misplaced",
         "Alpha/loose.png": "misplaced",
         "Alpha/press/kit.png": "misplaced",
@@ -141,7 +143,7 @@ def test_every_bad_file_kind_gets_its_status_and_reason(tmp_path, monkeypatch):
     skipped = skipped_files(table)
     assert len(skipped) == len(expected) - 1 and "ok" not in set(skipped["status"])
     text = summarise(table)
-    assert text.startswith("found 9 files: 1 used, 8 skipped")
+    assert text.startswith("found 10 files: 1 used, 9 skipped")
     assert "3 misplaced" in text and "1 truncated" in text
 
 
