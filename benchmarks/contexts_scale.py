@@ -11,14 +11,16 @@ Rand index against the generating centres (sklearn) and the unassigned share.
     .venv/bin/python benchmarks/contexts_scale.py              # 1k, 10k, 100k
     .venv/bin/python benchmarks/contexts_scale.py --sizes 1000 10000
 
-The first size in every process pays umap's numba JIT compilation; the
-figures include it, as a real run would.
+Every size pays umap's numba JIT compilation (its own process); the figures
+include it, as a real run would. The 1-minute load average is printed too:
+on a shared machine the wall times stretch with it.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import subprocess
 import sys
@@ -67,9 +69,11 @@ def one(n: int) -> dict:
         v = rng.normal(size=(len(phrases), x.shape[1]))
         return (v / np.linalg.norm(v, axis=1, keepdims=True)).astype(np.float32)
 
+    steps: dict = {}
     start = time.perf_counter()
     tables = run_contexts(
-        images, list(images["image_id"]), x, x, ContextSettings(), seed=0, encode_texts=encode_texts
+        images, list(images["image_id"]), x, x, ContextSettings(), seed=0, encode_texts=encode_texts,
+        seconds=steps,
     )
     seconds = time.perf_counter() - start
     labels = tables["image_contexts"]["context_id"].to_numpy()
@@ -87,6 +91,8 @@ def one(n: int) -> dict:
         "neighbours": int(contexts["setting_neighbours"].iloc[0]),
         "min_cluster_size": int(contexts["setting_min_cluster_size"].iloc[0]),
         "brand_context_rows": len(tables["brand_contexts"]),
+        "step_seconds": steps,
+        "load_average_1min_at_end": round(os.getloadavg()[0], 2),
     }
 
 

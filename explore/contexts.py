@@ -35,6 +35,7 @@ imported inside the functions that use them.
 
 from __future__ import annotations
 
+import time
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -131,6 +132,7 @@ class ContextFit:
     points: np.ndarray
     map_xy: np.ndarray
     parameters: dict = field(default_factory=dict)
+    seconds: dict = field(default_factory=dict)
 
     @property
     def n_contexts(self) -> int:
@@ -205,7 +207,9 @@ def place_by_neighbours(
     return np.einsum("nk,nkd->nd", weights, embedding[indices]).astype(np.float32)
 
 
-def reduce_with_umap(vectors: np.ndarray, parameters: dict) -> tuple[np.ndarray, np.ndarray]:
+def reduce_with_umap(
+    vectors: np.ndarray, parameters: dict, seconds: dict | None = None
+) -> tuple[np.ndarray, np.ndarray]:
     """UMAP points for clustering (``cluster_dimensions``-D) and for the map (2-D).
 
     The exact neighbour graph is computed once and shared by both layouts.
@@ -213,12 +217,16 @@ def reduce_with_umap(vectors: np.ndarray, parameters: dict) -> tuple[np.ndarray,
     ``fit_sample`` images and every other image is placed from its
     ``neighbours`` nearest sampled images (``place_by_neighbours``).
 
+    ``seconds``, when given, receives the wall time of each step.
+
     Returns
     -------
     points : (n, cluster_dimensions) float32; map_xy : (n, 2) float32.
     """
     import umap
 
+    seconds = {} if seconds is None else seconds
+    start = time.perf_counter()
     x = _normalise(vectors)
     n = len(x)
     k = parameters["neighbours"]
@@ -232,6 +240,7 @@ def reduce_with_umap(vectors: np.ndarray, parameters: dict) -> tuple[np.ndarray,
     rest = np.setdiff1d(np.arange(n), fit_rows)
     knn = exact_neighbours(x[fit_rows], k) + (None,)
     rest_knn = exact_neighbours(x[rest], k, base=x[fit_rows]) if len(rest) else None
+    seconds["neighbours"] = round(time.perf_counter() - start, 2)
     results = []
     for dims, min_dist in (
         (parameters["cluster_dimensions"], parameters["umap_min_dist_cluster"]),
@@ -246,6 +255,7 @@ def reduce_with_umap(vectors: np.ndarray, parameters: dict) -> tuple[np.ndarray,
             precomputed_knn=knn,
             low_memory=True,
         )
+        start = time.perf_counter()
         out = np.empty((n, dims), dtype=np.float32)
         with warnings.catch_warnings():
             # "n_jobs overridden by setting random_state" and "no search index":
@@ -254,6 +264,7 @@ def reduce_with_umap(vectors: np.ndarray, parameters: dict) -> tuple[np.ndarray,
             out[fit_rows] = reducer.fit_transform(x[fit_rows])
         if rest_knn is not None:
             out[rest] = place_by_neighbours(rest_knn[0], rest_knn[1], out[fit_rows], k)
+        seconds[f"umap_{dims}d"] = round(time.perf_counter() - start, 2)
         results.append(out)
     return results[0], results[1]
 
@@ -306,9 +317,12 @@ def find_contexts(vectors: np.ndarray, settings: ContextSettings, seed: int = 0)
     if not np.isfinite(vectors).all():
         raise ValueError("contexts: vectors contain NaN or infinite values")
     parameters = resolve_parameters(len(vectors), settings, seed)
-    points, map_xy = reduce_with_umap(vectors, parameters)
+    seconds: dict[str, float] = {}
+    points, map_xy = reduce_with_umap(vectors, parameters, seconds)
+    start = time.perf_counter()
     labels, membership = cluster_points(points, parameters)
-    fit = ContextFit(labels, membership, points, map_xy, parameters)
+    seconds["hdbscan"] = round(time.perf_counter() - start, 2)
+    fit = ContextFit(labels, membership, points, map_xy, parameters, seconds)
     parameters["contexts_found"] = fit.n_contexts
     parameters["unassigned"] = fit.n_unassigned
     return fit
@@ -682,6 +696,7 @@ def run_contexts(
     seed: int = 0,
     encode_texts=None,
     encoder_id: str = "",
+    seconds: dict | None = None,
 ) -> dict[str, pd.DataFrame]:
     """The whole contexts stage: find, name, index, and list the findings.
 
@@ -695,6 +710,7 @@ def run_contexts(
     encode_texts : callable phrases -> (m, d_j) vectors in the joint space
         (the encoder's ``encode_texts``); without it contexts are numbered.
     encoder_id : recorded in the contexts table.
+    seconds : optional dict that receives the wall time of each step.
 
     Returns
     -------
@@ -715,6 +731,7 @@ def run_contexts(
 
     fit = find_contexts(cluster, settings, seed)
     labels = fit.labels
+    start = time.perf_counter()
     phrases = load_vocabulary(settings) if encode_texts is not None else None
     phrase_vectors = np.asarray(encode_texts(phrases), dtype=np.float32) if phrases else None
     named = name_contexts(joint, labels, phrases, phrase_vectors)
@@ -750,8 +767,9 @@ def run_contexts(
            ("context_id", "context", "size", "share", "name_score", "alternatives", "exemplars")]
     ]
 
+    after_naming = time.perf_counter()
     table = brand_context_table(rows, labels, names)
-    return {
+    result = {
         "image_contexts": image_contexts,
         "contexts": contexts,
         "brand_contexts": table,
@@ -759,6 +777,11 @@ def run_contexts(
         "unexpected_contexts": unexpected_contexts(table, settings),
         "source_context_gaps": source_context_gaps(rows, labels, settings, names),
     }
+    if seconds is not None:
+        seconds.update(fit.seconds)
+        seconds["names_exemplars"] = round(after_naming - start, 2)
+        seconds["brand_tables"] = round(time.perf_counter() - after_naming, 2)
+    return result
 
 
 def settings_record(parameters: dict, settings: ContextSettings, encoder_id: str = "", phrases=None) -> dict:
@@ -811,3 +834,25 @@ def _require(frame: pd.DataFrame, columns: list[str], what: str) -> None:
     missing = [c for c in columns if c not in frame.columns]
     if missing:
         raise ValueError(f"contexts: {what} table lacks column(s) {', '.join(missing)}")
+
+
+def describe(tables: dict[str, pd.DataFrame]) -> list[str]:
+    """One-line notes for run.json: what was found and the settings used."""
+    cx = tables["contexts"]
+    real = cx[cx["context_id"] != UNASSIGNED_ID]
+    unassigned = int(cx.loc[cx["context_id"] == UNASSIGNED_ID, "size"].sum())
+    total = int(cx["size"].sum())
+    settings = {k[len("setting_"):]: v for k, v in cx.iloc[0].items() if k.startswith("setting_")}
+    gaps = tables["source_context_gaps"]
+    return [
+        f"contexts: {len(real)} contexts found in {total} images; {unassigned} unassigned "
+        f"({unassigned / max(total, 1):.1%}), kept as context -1",
+        "contexts: settings used " + ", ".join(f"{k}={_plain(v)}" for k, v in settings.items()),
+        f"contexts: {len(tables['signature_contexts'])} signature, "
+        f"{len(tables['unexpected_contexts'])} unexpected, "
+        f"{int(gaps['significant'].sum()) if len(gaps) else 0} consumer-vs-owned differences",
+    ]
+
+
+def _plain(value):
+    return value.item() if hasattr(value, "item") else value

@@ -146,6 +146,27 @@ def run_study(
         summary.notes += [f"attributes: {note}" for note in attribute_notes]
     # --- end attributes --------------------------------------------------------
 
+    # --- contexts (explore/contexts.py): UMAP + HDBSCAN, names, brand indices ---
+    if len(embeddings.image_ids) >= 3:
+        with timer("contexts"):
+            from explore import contexts
+
+            context_tables = contexts.run_contexts(
+                images,
+                embeddings.image_ids,
+                embeddings.cluster,
+                embeddings.joint,
+                study.contexts,
+                seed=study.seed,
+                encode_texts=encoder.encode_texts,
+                encoder_id=encoder.id,
+            )
+            summary.tables += write_tables(out, context_tables)
+            summary.notes += contexts.describe(context_tables)
+    else:
+        summary.notes.append("contexts: skipped, fewer than 3 usable images")
+    # --- end contexts ------------------------------------------------------------
+
 
     # --- compare (explore/compare.py): survey agreement, brand maps ---------
     if "attribute_shares" in summary.tables:
