@@ -87,6 +87,7 @@ def map_js(page, body: str):
 def shoot(page, selector: str, name: str) -> None:
     """Screenshot of one section as laid out on the full page (the sticky bar stays at the top)."""
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    page.evaluate("window.scrollTo(0, 0)")
     box = page.evaluate(
         f"() => {{ const r = document.querySelector('{selector}').getBoundingClientRect();"
         " return {x: r.left + window.scrollX, y: r.top + window.scrollY, width: r.width, height: r.height}; }"
@@ -146,6 +147,8 @@ def test_hovering_a_point_shows_its_thumbnail(opened, synthetic_report):
     opened.page.mouse.move(sx, sy, steps=5)
     card = opened.page.locator("#hover-card")
     card.wait_for(state="visible", timeout=5000)
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    opened.page.screenshot(path=str(ARTIFACTS / "synthetic-map-hover.png"))
     src = card.locator("img").get_attribute("src")
     assert src.startswith("data:image/jpeg;base64,")
     text = card.inner_text()
@@ -299,13 +302,29 @@ def test_hostile_names_run_nothing_and_show_as_text(browser, hostile_report):
         page.close()
 
 
+def _output_folder(demo) -> Path:
+    """The demo's output folder from whatever the fixture returns (a path, a summary, a dict)."""
+    for key in ("output", "out", "folder"):
+        value = demo.get(key) if isinstance(demo, dict) else getattr(demo, key, None)
+        if value:
+            return Path(value)
+    return Path(demo)
+
+
 def test_demo_report_in_the_browser(browser, request):
     """The demo run (shared session fixture ``demo_run``): size, clean load, map, screenshots."""
     try:
         demo = request.getfixturevalue("demo_run")
     except pytest.FixtureLookupError:
         pytest.skip("no demo_run fixture in tests/conftest.py yet")
-    out = Path(getattr(demo, "output", None) or demo["output"] if isinstance(demo, dict) else getattr(demo, "output", demo))
+    stdout = getattr(demo, "stdout", None) or (demo.get("stdout") if isinstance(demo, dict) else None)
+    if stdout:
+        # `explore demo` ends by printing the report's path.
+        last = [line for line in stdout.splitlines() if line.strip()][-1]
+        assert last.startswith("report: "), last
+        out = Path(last[len("report: "):].strip()).parent
+    else:
+        out = _output_folder(demo)
     path = out / "report.html"
     assert path.is_file(), f"the demo run wrote no report at {path}"
     size = path.stat().st_size
@@ -316,6 +335,31 @@ def test_demo_report_in_the_browser(browser, request):
         assert page.outside_requests() == []
         ic = pd.read_parquet(out / "image_contexts.parquet")
         assert map_js(page.page, "return src.get_length();") == len(ic)
+        p = page.page
+        # Hover the outermost point: its thumbnail shows.
+        xy = ic[["map_x", "map_y"]].to_numpy()
+        k = int(np.argmax(np.linalg.norm(xy - xy.mean(axis=0), axis=1)))
+        sx, sy = screen_xy(p, *xy[k])
+        p.mouse.move(sx - 30, sy - 30)
+        p.mouse.move(sx, sy, steps=5)
+        p.locator("#hover-card").wait_for(state="visible", timeout=5000)
+        assert p.locator("#hover-card img").get_attribute("src").startswith("data:image/jpeg;base64,")
+        p.mouse.move(5, 5)
+        # The colour selector recolours.
+        before = map_js(p, "return Array.from(src.data.color);")
+        p.select_option("#colour-select", "source")
+        assert map_js(p, "return Array.from(src.data.color);") != before
+        # A box over the left half of the frame fills the gallery with what it encloses.
+        ax, ay, bx, by = map_js(p, """
+            const r = view.canvas_view.el.getBoundingClientRect(); const f = view.frame.bbox;
+            return [r.left + f.left + 3, r.top + f.top + 3, r.left + f.left + f.width / 2, r.top + f.bottom - 3];""")
+        p.mouse.move(ax, ay)
+        p.mouse.down()
+        p.mouse.move(bx, by, steps=8)
+        p.mouse.up()
+        p.wait_for_function("document.querySelectorAll('#gallery figure').length > 0", timeout=5000)
+        selected = map_js(p, "return src.selected.indices.length;")
+        assert p.locator("#gallery figure").count() == min(selected, 240)
         for section in ("overview", "brand-view", "context-map", "contexts", "brand-by-context", "attributes", "comparisons"):
             shoot(page.page, f"#{section}", f"demo-{section}.png")
     finally:

@@ -315,7 +315,7 @@ def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: 
                                x_start="x0", y_start="y0", x_end="x1", y_end="y1", line_color=MUTED,
                                line_width=1.3))
             # Arrows are annotations and do not widen the ranges; an invisible glyph at their tips does.
-            p.scatter("x1", "y1", source=arrows, size=1, alpha=0)
+            p.scatter(vec[:, 0] * scale * 1.35, vec[:, 1] * scale * 1.35, size=1, alpha=0)  # room for the labels
             p.add_layout(LabelSet(x="x1", y="y1", text="attribute", source=arrows, text_color=MUTED,
                                   text_font_size="11px", text_font_style="italic", x_offset=4, y_offset=2))
     r = p.scatter("x", "y", source=brand_src, size=11, fill_color=SOURCE_COLOURS.get(source_name, INK),
@@ -324,7 +324,7 @@ def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: 
                           x_offset=7, y_offset=-6))
     p.add_tools(HoverTool(renderers=[r], tooltips=[("brand", "@brand"), ("category", "@category")]))
     _style(p)
-    p.x_range.range_padding = 0.25  # room for the labels
+    p.x_range.range_padding = 0.45  # room for the labels
     p.y_range.range_padding = 0.15
     return p
 
@@ -354,12 +354,20 @@ def displacement_plot(displacement: pd.DataFrame, name: str):
                           x_offset=7, y_offset=-6))
     p.add_tools(HoverTool(renderers=[c, o], tooltips=[("brand", "@brand"), ("displacement", "@dist")]))
     _style(p)
-    p.x_range.range_padding = 0.25
+    p.x_range.range_padding = 0.4
     p.y_range.range_padding = 0.15
-    p.legend.location = "top_left"
-    p.legend.background_fill_alpha = 0.8
-    p.legend.label_text_font_size = "11px"
+    _legend_below(p)
     return p
+
+
+def _legend_below(p) -> None:
+    """Legend under the plot, in one row, so it never hides a brand."""
+    legend = p.legend[0]
+    legend.orientation = "horizontal"
+    legend.label_text_font_size = "11px"
+    legend.border_line_color = None
+    legend.background_fill_alpha = 0
+    p.add_layout(legend, "below")
 
 
 def vector_map_plot(vector_map: pd.DataFrame, name: str):
@@ -397,9 +405,7 @@ def vector_map_plot(vector_map: pd.DataFrame, name: str):
         return None
     p.add_tools(HoverTool(renderers=renderers, tooltips=[("brand", "@brand"), ("source", "@source"), ("photos", "@n")]))
     _style(p)
-    p.x_range.range_padding = 0.25
+    p.x_range.range_padding = 0.4
     p.y_range.range_padding = 0.15
-    p.legend.location = "top_left"
-    p.legend.background_fill_alpha = 0.8
-    p.legend.label_text_font_size = "11px"
+    _legend_below(p)
     return p

@@ -631,11 +631,32 @@ def _fmt_cell(column: str, value) -> str:
 
 
 def _agreement(out: OutputFolder):
+    """The agreement table in reading form: one cell per statistic with its p-value."""
     if not out.has("agreement"):
         return {"missing": out.missing("agreement")}
-    cols = ["category", "attribute", "metric_a", "metric_b", "n_brands", "concordant_share", "kendall_tau",
-            "kendall_p", "spearman_rho", "spearman_p", "pearson_r", "pearson_p", "note"]
-    return {"missing": "", "table": html_table(out.get("agreement"), cols)}
+    t = out.get("agreement")
+
+    def with_p(value_col: str, p_col: str) -> list[str]:
+        if value_col not in t:
+            return ["–"] * len(t)
+        p = t[p_col] if p_col in t else pd.Series(np.nan, index=t.index)
+        return [fmt_number(v) + ("" if fmt_number(q) == "–" else f" (p {fmt_number(q)})") for v, q in zip(t[value_col], p)]
+
+    def named(v) -> str:
+        return str(v).replace("_", " ")
+
+    view = pd.DataFrame({
+        "category": t.get("category", ""),
+        "attribute": t.get("attribute", ""),
+        "compared": [f"{named(a)} vs {named(b)}" for a, b in zip(t.get("metric_a", ""), t.get("metric_b", ""))],
+        "brands": t.get("n_brands", np.nan),
+        "pairs ranked alike": [("–" if fmt_number(v) == "–" else f"{100 * float(v):.0f} %") for v in t.get("concordant_share", np.nan)],
+        "Kendall tau": with_p("kendall_tau", "kendall_p"),
+        "Spearman rho": with_p("spearman_rho", "spearman_p"),
+        "Pearson r": with_p("pearson_r", "pearson_p"),
+        "note": t.get("note", "").fillna("") if "note" in t else "",
+    })
+    return {"missing": "", "table": html_table(view)}
 
 
 def _displacement_table(out: OutputFolder):
