@@ -75,11 +75,16 @@ def browser_times(path: Path) -> str:
         page.wait_for_function("window.Bokeh && Bokeh.documents.length > 0 && Bokeh.documents[0].is_idle",
                                timeout=300_000)
         load = time.perf_counter() - t0
-        ms = page.evaluate("""() => {
+        ms = page.evaluate("""async () => {
             const src = Bokeh.documents[0].get_model_by_name('map_source');
-            let t = performance.now(); window.ExploreReport.setColour('brand'); const colour = performance.now() - t;
+            const frame = () => new Promise(r => requestAnimationFrame(() => r()));
+            let t = performance.now(); window.ExploreReport.setColour('brand'); await frame();
+            const colour = performance.now() - t;
             const all = Array.from({length: src.get_length()}, (_, i) => i);
-            t = performance.now(); src.selected.indices = all; const select = performance.now() - t;
+            t = performance.now(); src.selected.indices = all;  // the gallery fills from bokeh's change event
+            while (!document.querySelector('#gallery figure')) await new Promise(r => setTimeout(r, 2));
+            await frame();
+            const select = performance.now() - t;
             return [colour, select, document.querySelectorAll('#gallery figure').length];
         }""")
         b.close()
