@@ -157,7 +157,7 @@ def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], conte
             "q_text", "text_color"]
     source = ColumnDataSource({c: table[c].tolist() for c in cols})
     cell = 44
-    width = max(420, 170 + cell * len(x_factors))
+    width = max(420, 260 + cell * len(x_factors))
     p = figure(
         name="context_heatmap",
         x_range=FactorRange(*x_factors),
@@ -167,6 +167,7 @@ def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], conte
         tools="",
         toolbar_location=None,
         x_axis_location="above",
+        min_border_right=90,  # the last slanted context name needs room
     )
     p.rect("label", "brand", 0.94, 0.9, source=source, fill_color="color", line_color=None)
     p.text("label", "brand", text="index_text", source=source, text_align="center", text_baseline="middle",
