@@ -34,6 +34,8 @@
     var k = Math.max(s.lastIndexOf("/"), s.lastIndexOf("\\"));
     return k >= 0 ? s.slice(k + 1) : s;
   }
+  function photos(n) { return n === null || n === undefined ? "– photos" : n + (n === 1 ? " photo" : " photos"); }
+  function short(text, n) { var t = String(text); return t.length > n ? t.slice(0, n - 1) + "…" : t; }
   function pct(v) { return v === null || v === undefined ? "–" : (100 * v).toFixed(1) + "\u00a0%"; }
   function contextName(cid) {
     var c = contextById[cid];
@@ -375,14 +377,14 @@
       svg.appendChild(svgEl("circle", { cx: sx(p.x), cy: sy(p.y), r: 3.2, fill: "#c4bcae" }));
       var right = sx(p.x) > w / 2;
       var t = svgEl("text", { x: sx(p.x) + (right ? -5 : 5), y: sy(p.y) - 4, "font-size": 8, fill: "#9a9183", "text-anchor": right ? "end" : "start" });
-      t.textContent = p.brand;
+      t.textContent = short(p.brand, 16);
       svg.appendChild(t);
     });
     if (mine) {
       svg.appendChild(svgEl("circle", { cx: sx(mine.x), cy: sy(mine.y), r: 6, fill: "#b8432b", stroke: "#fff", "stroke-width": 1.5 }));
       var mr = sx(mine.x) > w / 2;
       var t = svgEl("text", { x: sx(mine.x) + (mr ? -9 : 9), y: sy(mine.y) + 3.5, "font-size": 10, "font-weight": 700, fill: "#1e2a36", "text-anchor": mr ? "end" : "start" });
-      t.textContent = mine.brand;
+      t.textContent = short(mine.brand, 22);
       svg.appendChild(t);
     }
     return svg;
@@ -417,7 +419,7 @@
       fill.style.width = (100 * (c.share || 0) / maxShare).toFixed(1) + "%";
       bar.appendChild(fill);
       barBox.appendChild(bar);
-      barBox.appendChild(el("div", "bv-share", pct(c.share) + " · " + (c.count === null ? "–" : c.count) + " photos"));
+      barBox.appendChild(el("div", "bv-share", pct(c.share) + " · " + photos(c.count)));
       var bySource = view.contexts.filter(function (o) { return o.id === c.id && o.source !== "all"; })
         .map(function (o) { return o.source + "\u00a0" + (o.share === null ? "–" : Math.round(100 * o.share) + "\u00a0%"); });
       if (bySource.length) barBox.appendChild(el("div", "bv-share", bySource.join(" · ")));
@@ -449,7 +451,7 @@
         d.appendChild(el("b", null, "index " + (it.index === null ? "–" : Math.round(it.index))));
         d.appendChild(document.createTextNode(it.name));
         d.appendChild(el("div", "fine", pct(it.share) + " of the brand's" + (it.source && it.source !== "all" ? " " + it.source : "") +
-          " photos" + (it.count !== null ? " · " + it.count + " photos" : "")));
+          " photos" + (it.count !== null ? " · " + photos(it.count) : "")));
         if (grp.all.length > 1 || (it.source && it.source !== "all")) {
           d.appendChild(el("div", "fine", "stands out in: " + grp.all.map(function (o) {
             return (o.source || "all") + " photos (" + (o.index === null ? "–" : Math.round(o.index)) + ")";
