@@ -6,6 +6,7 @@ Every numeric check names its outside reference beside it.
 from __future__ import annotations
 
 import zlib
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -638,3 +639,80 @@ def test_check_command_refuses_bad_inputs(labelled_tree, tmp_path, capsys):
     assert "--attribute 'sunny': expected exactly one '/'" in capsys.readouterr().err
     assert main(["--quiet", "run", study, "--attribute", "animal: furry / bald"]) == 2
     assert "attribute 'animal' is defined twice" in capsys.readouterr().err
+
+
+# --------------------------------------------------------------------------
+# The demo scenario (fictional brands, planted attribute levels), bundled encoder
+
+DEMO = Path(__file__).resolve().parent.parent / "demo_images"
+ATTRIBUTE_TABLES = ["image_attributes", "attribute_definitions", "attribute_shares", "attribute_gaps"]
+
+
+@pytest.fixture(scope="module")
+def demo_attributes(request):
+    """(output folder of `explore demo --encoder bundled`, truth_images) from the shared fixture."""
+    try:
+        run = request.getfixturevalue("demo_run")  # tests/conftest.py
+    except pytest.FixtureLookupError:
+        pytest.skip("the shared demo_run fixture (tests/conftest.py) is not there yet")
+    folder = Path(getattr(run, "output", run))
+    truth = DEMO / "truth_images.csv"
+    if not truth.is_file():
+        pytest.skip("demo_images/truth_images.csv is missing")
+    return folder, pd.read_csv(truth)
+
+
+def planted_directions(truth_images: pd.DataFrame, attributes) -> list[tuple[str, str, str]]:
+    """(attribute, category, brand) where one brand's planted level stands out in its category:
+    at least 0.3 and at least twice the next brand's."""
+    out = []
+    for attribute in attributes:
+        if attribute not in truth_images.columns:
+            continue
+        levels = truth_images.groupby(["category", "brand"])[attribute].mean()
+        for category, part in levels.groupby(level=0):
+            ranked = part.droplevel(0).sort_values(ascending=False)
+            if len(ranked) > 1 and ranked.iloc[0] >= 0.3 and ranked.iloc[0] >= 2 * ranked.iloc[1]:
+                out.append((attribute, category, ranked.index[0]))
+    return out
+
+
+@pytest.mark.slow
+def test_demo_writes_the_attribute_tables(demo_attributes):
+    folder, truth = demo_attributes
+    tables = {name: pd.read_parquet(folder / f"{name}.parquet") for name in ATTRIBUTE_TABLES}
+    for name in ATTRIBUTE_TABLES:
+        assert (folder / f"{name}.csv").is_file()
+    definitions = tables["attribute_definitions"]
+    assert len(definitions) >= 1 and definitions.encoder_id.str.startswith("bundled").all()
+    long = tables["image_attributes"]
+    assert len(long) == len(definitions) * len(truth)  # every demo image scored for every attribute
+    assert long.probability.between(0, 1).all()
+    shares = tables["attribute_shares"]
+    assert set(shares.brand[shares.level == "brand"]) == set(truth.brand)
+    assert len(tables["attribute_gaps"]) == len(definitions) * truth.brand.nunique()
+
+
+@pytest.mark.slow
+def test_demo_planted_attribute_directions_are_recovered(demo_attributes):
+    folder, truth = demo_attributes
+    shares = pd.read_parquet(folder / "attribute_shares.parquet")
+    brand_rows = shares[(shares.level == "brand") & (shares.source == "all")]
+    planted = truth.groupby("brand")[[c for c in set(brand_rows.attribute) if c in truth.columns]].mean()
+    print()
+    for attribute, part in brand_rows.groupby("attribute"):
+        print(f"{attribute}: brand, share [95% Wilson], mean probability [95% bootstrap], planted level")
+        for r in part.sort_values(["category", "brand"]).itertuples():
+            level = f"{planted.loc[r.brand, attribute]:.2f}" if attribute in planted.columns else "-"
+            print(f"  {r.category:<8} {r.brand:<10} share {r.share:.2f} [{r.share_low:.2f}, {r.share_high:.2f}] "
+                  f"mean p {r.mean_probability:.3f} [{r.mean_low:.3f}, {r.mean_high:.3f}] planted {level}")
+    directions = planted_directions(truth, set(brand_rows.attribute))
+    assert directions, "the demo study scores none of the attributes the demo plants"
+    missed = []
+    for attribute, category, brand in directions:
+        part = brand_rows[(brand_rows.attribute == attribute) & (brand_rows.category == category)]
+        top = part.sort_values("mean_probability", ascending=False).brand.iloc[0]
+        print(f"planted: {brand} leads {category} on {attribute}; found leader: {top}")
+        if top != brand:
+            missed.append(f"{attribute}/{category}: planted {brand}, found {top}")
+    assert not missed, missed
