@@ -229,10 +229,19 @@ def test_click_through_from_a_signature_context_shows_its_photos(opened, synthet
     opened.page.locator("#contexts tr.photo-row").first.click()
     dialog = opened.page.locator("#photo-dialog")
     dialog.wait_for(state="visible")
-    assert opened.page.locator("#photo-dialog-title").inner_text() == f"{row['brand']} · {row['context']}"
+    suffix = "" if row["source"] == "all" else f" · {row['source']} photos"
+    assert opened.page.locator("#photo-dialog-title").inner_text() == f"{row['brand']} · {row['context']}{suffix}"
     assert dialog.locator("figure").count() == int(row["count"])
     opened.page.keyboard.press("Escape")
     dialog.wait_for(state="hidden")
+    # A consumer-only row shows that brand's consumer photos in the context, and only those.
+    unexpected = pd.read_parquet(out / "unexpected_contexts.parquet").sort_values(["brand", "index"], ascending=[True, False])
+    k = int(np.flatnonzero((unexpected["source"] == "consumer").to_numpy())[0])
+    row = unexpected.iloc[k]
+    opened.page.locator("#contexts .context-list").nth(1).locator("tr.photo-row").nth(k).click()
+    dialog.wait_for(state="visible")
+    assert opened.page.locator("#photo-dialog-title").inner_text() == f"{row['brand']} · {row['context']} · consumer photos"
+    assert dialog.locator("figure").count() == int(row["count"])
 
 
 def test_brand_view_follows_the_picker(opened, synthetic_report):

@@ -604,6 +604,7 @@ def _contexts_section(out: OutputFolder, context_list: list[dict], bc_all, brand
                 "brand": str(rec.get("brand", "")),
                 "context_id": int(rec["context_id"]) if "context_id" in rec and pd.notna(rec["context_id"]) else None,
                 "context": str(rec.get("context", "")),
+                "source": str(rec.get("source", "all") or "all"),
             })
         lists.append({"key": key, "title": title, "missing": "", "columns": cols, "rows": rows, "total": len(table)})
     return {

@@ -306,13 +306,15 @@
 
   // ------------------------------------------------------------------ photo dialog (click-through)
   var dialog = document.getElementById("photo-dialog");
-  function openPhotos(brandName, contextId) {
+  function openPhotos(brandName, contextId, sourceName) {
     var b = brandName === null ? -1 : DATA.brands.indexOf(brandName);
+    var s = sourceName && sourceName !== "all" ? DATA.sources.indexOf(sourceName) : -1;
     var list = [];
     for (var k = 0; k < N; k++) {
-      if ((b < 0 || P.b[k] === b) && (contextId === null || P.c[k] === contextId)) list.push(k);
+      if ((b < 0 || P.b[k] === b) && (s < 0 || P.s[k] === s) && (contextId === null || P.c[k] === contextId)) list.push(k);
     }
-    var title = (brandName !== null ? brandName + " · " : "") + (contextId !== null ? contextName(contextId) : "all contexts");
+    var title = (brandName !== null ? brandName + " · " : "") + (contextId !== null ? contextName(contextId) : "all contexts") +
+      (s >= 0 ? " · " + sourceName + " photos" : "");
     dialog.querySelector("h3").textContent = title;
     fillGallery(dialog.querySelector(".pd-gallery"), dialog.querySelector(".pd-counts"), list, 400);
     dialog.hidden = false;
@@ -325,7 +327,7 @@
   document.querySelectorAll(".photo-row").forEach(function (row) {
     function go() {
       var c = row.getAttribute("data-context");
-      openPhotos(row.getAttribute("data-brand"), c === null ? null : +c);
+      openPhotos(row.getAttribute("data-brand"), c === null ? null : +c, row.getAttribute("data-source"));
     }
     row.addEventListener("click", go);
     row.addEventListener("keydown", function (ev) { if (ev.key === "Enter") go(); });
@@ -458,7 +460,7 @@
           }).join(", ")));
         }
         d.title = "show these photos";
-        d.addEventListener("click", function () { openPhotos(brand, it.id === null ? null : +it.id); });
+        d.addEventListener("click", function () { openPhotos(brand, it.id === null ? null : +it.id, it.source); });
         list.appendChild(d);
       });
     });
