@@ -235,3 +235,22 @@ def test_cli_report_command_on_an_output_folder(tmp_path):
     bad = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(tmp_path / "none.toml")],
                          capture_output=True, text=True)
     assert bad.returncode == 2 and "study file not found" in bad.stderr
+
+
+def test_thumbnail_follows_exif_orientation_and_keeps_aspect(tmp_path):
+    from PIL import Image
+
+    from explore.report.thumbnails import make_thumbnail
+
+    # A landscape 200 x 100 JPEG whose EXIF orientation tag (274) is 6: viewers show it rotated
+    # by 90 degrees, i.e. portrait (EXIF 2.3, "Orientation"). The thumbnail must be portrait too.
+    im = Image.new("RGB", (200, 100), (200, 30, 30))
+    exif = Image.Exif()
+    exif[274] = 6
+    path = tmp_path / "turned.jpg"
+    im.save(path, "JPEG", exif=exif)
+    thumb = Image.open(io.BytesIO(make_thumbnail(path, 64)))
+    assert thumb.size == (32, 64)
+    assert make_thumbnail(tmp_path / "missing.jpg", 64) is None
+    (tmp_path / "broken.jpg").write_bytes(b"\xff\xd8 not really a jpeg")
+    assert make_thumbnail(tmp_path / "broken.jpg", 64) is None

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import base64
 import io
+import os
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -122,10 +123,19 @@ def thumbnails_for(
             cached = {}
     out: dict[str, str] = {}
     fresh: dict[str, bytes] = {}
-    for image_id, path, sha in zip(rows.index, rows["path"], rows["sha256"]):
+    todo = [(i, p, s) for i, p, s in zip(rows.index, rows["path"], rows["sha256"]) if not (s and s in cached)]
+    made: dict[str, bytes | None] = {}
+    if todo:
+        # Pillow releases the GIL while decoding and resizing, so threads use every core.
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=max(1, min(8, os.cpu_count() or 1))) as pool:
+            for (image_id, _, _), data in zip(todo, pool.map(lambda t: make_thumbnail(t[1], px), todo)):
+                made[image_id] = data
+    for image_id, sha in zip(rows.index, rows["sha256"]):
         data = cached.get(sha) if sha else None
         if data is None:
-            data = make_thumbnail(path, px)
+            data = made.get(image_id)
             if data is None:
                 continue
             if sha:
