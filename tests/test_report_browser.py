@@ -359,3 +359,33 @@ def test_demo_report_in_the_browser(browser, request):
             shoot(page.page, f"#{section}", f"demo-{section}.png")
     finally:
         page.close()
+
+
+def test_lasso_selection_fills_the_gallery(opened, synthetic_report):
+    out, _ = synthetic_report
+    ic = pd.read_parquet(out / "image_contexts.parquet")
+    p = opened.page
+    p.locator("#map-frame").scroll_into_view_if_needed()
+    # Make the lasso the active drag tool (as its toolbar button does), then draw a triangle
+    # over the left half of the frame.
+    corners = map_js(p, """
+        const lasso = fig.toolbar.tools.find(t => t.type === "LassoSelectTool");
+        lasso.active = true;
+        const r = view.canvas_view.el.getBoundingClientRect(); const f = view.frame.bbox;
+        const px = [[f.left + 3, f.top + 3], [f.left + f.width / 2, f.top + 3], [f.left + 3, f.bottom - 3]];
+        return px.map(([x, y]) => [r.left + x, r.top + y, view.frame.x_scale.invert(x), view.frame.y_scale.invert(y)]);""")
+    p.mouse.move(corners[0][0], corners[0][1])
+    p.mouse.down()
+    for sx, sy, _, _ in corners[1:] + corners[:1]:
+        p.mouse.move(sx, sy, steps=12)
+    p.mouse.up()
+    p.wait_for_function("document.querySelectorAll('#gallery figure').length > 0", timeout=5000)
+    selected = map_js(p, "return src.selected.indices.length;")
+    # Points inside the triangle (x0, y0) - (x1, y0) - (x0, y1) in data units: same-side test.
+    (_, _, x0, y0), (_, _, x1, _), (_, _, _, y1) = corners
+    u = (ic["map_x"] - x0) / (x1 - x0)
+    v = (ic["map_y"] - y0) / (y1 - y0)
+    inside = int(((u >= 0) & (v >= 0) & (u + v <= 1)).sum())
+    assert inside > 0
+    assert abs(selected - inside) <= 3
+    assert p.locator("#gallery figure").count() == min(selected, 240)
