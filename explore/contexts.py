@@ -370,9 +370,14 @@ def distinctiveness(joint: np.ndarray, labels: np.ndarray, phrase_vectors: np.nd
     phrase over all images, which removes phrases that are close to every
     image. A context's affinity to a phrase is the mean standardised
     similarity of its images; its distinctiveness is that affinity minus the
-    highest affinity of any *other* context. A phrase can therefore score
-    above zero for at most one context. With a single context, the affinity
-    itself is used (it is already relative to all images).
+    mean affinity of the *other* contexts (each context counted once,
+    whatever its size). A phrase close to every context scores about zero
+    everywhere. With a single context, the affinity itself is used (it is
+    already relative to all images).
+
+    Measured on the demo scenario with the bundled encoder, subtracting the
+    mean of the other contexts named more contexts sensibly than subtracting
+    the best other context, which punishes a phrase for one similar rival.
     """
     sims = _normalise(joint) @ _normalise(phrase_vectors).T
     sims = (sims - sims.mean(axis=0)) / (sims.std(axis=0) + 1e-12)
@@ -380,11 +385,9 @@ def distinctiveness(joint: np.ndarray, labels: np.ndarray, phrase_vectors: np.nd
     affinity = np.stack([sims[labels == c].mean(axis=0) for c in ids]) if len(ids) else np.zeros((0, sims.shape[1]))
     if len(ids) <= 1:
         return affinity
-    score = np.empty_like(affinity)
-    for i in range(len(ids)):
-        others = np.delete(affinity, i, axis=0)
-        score[i] = affinity[i] - others.max(axis=0)
-    return score
+    k = len(ids)
+    others_mean = (affinity.sum(axis=0, keepdims=True) - affinity) / (k - 1)
+    return affinity - others_mean
 
 
 def name_contexts(
@@ -497,7 +500,7 @@ def benjamini_hochberg(p_values) -> np.ndarray:
 
 
 def brand_context_table(
-    images: pd.DataFrame, labels: np.ndarray, names: dict[int, str] | None = None
+    images: pd.DataFrame, labels: np.ndarray, names: dict[int, str] | None = None, min_margin: int = 0
 ) -> pd.DataFrame:
     """Count, share, index and Fisher test per brand, source and context.
 
@@ -514,13 +517,20 @@ def brand_context_table(
     - p_value: two-sided Fisher exact test of [[count, brand_n - count],
       [rest_count, rest_n - rest_count]] (NaN when the brand is alone in its
       category, and for "unassigned", which is not a context to test);
-    - q_value: Benjamini-Hochberg over every tested row of this table.
+    - q_value: Benjamini-Hochberg over the tested rows of this table whose
+      category count (count + rest_count, a margin of the 2x2 table) is at
+      least ``min_margin``; NaN for the others. Leaving out rows that could
+      never pass ``min_count`` before adjusting is "independent filtering"
+      (Bourgon, Gentleman and Huber, 2010, PNAS 107:9546): Fisher's test
+      conditions on its margins, so the filter does not bias the p-values
+      that remain, and the family is not padded with empty cells.
 
     Parameters
     ----------
     images : one row per clustered image, with brand, category, source.
     labels : context id per row of ``images``.
     names : context id -> name.
+    min_margin : see q_value (run_contexts passes ``min_count``).
     """
     _require(images, ["brand", "category", "source"], "images")
     frame = images[["brand", "category", "source"]].reset_index(drop=True).copy()
@@ -553,7 +563,9 @@ def brand_context_table(
         table.loc[tested, "p_value"] = fisher_pvalues(
             t["count"], t["brand_n"] - t["count"], t["rest_count"], t["rest_n"] - t["rest_count"]
         )
-    table["q_value"] = benjamini_hochberg(table["p_value"].to_numpy())
+    family = (table["category_count"] >= min_margin).to_numpy()
+    table["q_value"] = np.nan
+    table.loc[family, "q_value"] = benjamini_hochberg(table.loc[family, "p_value"].to_numpy())
     table["context"] = table["context_id"].map(lambda c: _name(c, names))
     columns = [
         "brand", "category", "source", "context_id", "context", "count", "brand_n", "share",
@@ -630,9 +642,11 @@ def source_context_gaps(
     Only brands with both consumer and owned images. gap = consumer_share -
     owned_share; p_value is the two-sided Fisher exact test of
     [[consumer_count, consumer_n - consumer_count], [owned_count, owned_n -
-    owned_count]]; q_value is Benjamini-Hochberg over the whole table
-    ("unassigned" rows are reported, not tested). significant: q_value <= fdr
-    and the larger of the two counts >= min_count. direction says which
+    owned_count]]; q_value is Benjamini-Hochberg over the tested rows whose
+    consumer_count + owned_count (a margin) is at least min_count, NaN for the
+    rest (independent filtering, as in ``brand_context_table``; "unassigned"
+    rows are reported, not tested). significant: q_value <= fdr and the larger
+    of the two counts >= min_count. direction says which
     source shows the context more.
     """
     _require(images, ["brand", "category", "source"], "images")
@@ -671,7 +685,9 @@ def source_context_gaps(
             t["consumer_count"], t["consumer_n"] - t["consumer_count"],
             t["owned_count"], t["owned_n"] - t["owned_count"],
         )
-    out["q_value"] = benjamini_hochberg(out["p_value"].to_numpy())
+    family = ((out["consumer_count"] + out["owned_count"]) >= settings.min_count).to_numpy()
+    out["q_value"] = np.nan
+    out.loc[family, "q_value"] = benjamini_hochberg(out.loc[family, "p_value"].to_numpy())
     out["significant"] = (out["q_value"] <= settings.fdr) & (
         np.maximum(out["consumer_count"], out["owned_count"]) >= settings.min_count
     )
@@ -768,7 +784,7 @@ def run_contexts(
     ]
 
     after_naming = time.perf_counter()
-    table = brand_context_table(rows, labels, names)
+    table = brand_context_table(rows, labels, names, min_margin=settings.min_count)
     result = {
         "image_contexts": image_contexts,
         "contexts": contexts,

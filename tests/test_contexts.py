@@ -6,6 +6,10 @@ the fits are shared through module-scoped fixtures.
 
 from __future__ import annotations
 
+import subprocess
+import sys
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -364,3 +368,126 @@ def test_run_contexts_tables(blobs):
     hit = gaps[(gaps.brand == "Alba") & (gaps.context_id == blob0)]
     assert hit["significant"].item() and hit["direction"].item() == "more in consumer photos"
     assert bc["q_value"].dropna().between(0, 1).all()
+
+
+# --------------------------------------------------------------------------
+# The demo scenario (fictional brands, planted contexts), bundled encoder
+
+DEMO = Path(__file__).resolve().parent.parent / "demo_images"
+
+
+def _demo_folder(tmp_path_factory) -> Path:
+    """demo_images/ when its images are there, else a fresh copy made by make_demo.py."""
+    if (DEMO / "truth_images.csv").is_file() and (DEMO / "images").is_dir():
+        return DEMO
+    if not (DEMO / "make_demo.py").is_file():
+        pytest.skip("demo_images/make_demo.py is missing")
+    if not Path("/usr/share/openclipart/png").is_dir():
+        pytest.skip("demo images not generated and openclipart-png is not installed to make them")
+    out = tmp_path_factory.mktemp("demo")
+    subprocess.run([sys.executable, str(DEMO / "make_demo.py"), "--out", str(out)], check=True,
+                   capture_output=True)
+    return out
+
+
+def _tables_from_run(run) -> dict | None:
+    """The context tables written by the shared ``demo_run`` fixture, if it wrote them."""
+    folder = getattr(run, "output", run)
+    if not isinstance(folder, (str, Path)):
+        return None
+    folder = Path(folder)
+    names = ["images", "image_contexts", "contexts", "signature_contexts", "unexpected_contexts",
+             "source_context_gaps"]
+    if not all((folder / f"{n}.parquet").is_file() for n in names):
+        return None
+    return {n: pd.read_parquet(folder / f"{n}.parquet") for n in names}
+
+
+@pytest.fixture(scope="module")
+def demo_contexts(request, tmp_path_factory):
+    """(tables, truth_images, truth_brands) for the demo scenario with the bundled encoder."""
+    tables = None
+    folder = DEMO
+    try:
+        run = request.getfixturevalue("demo_run")  # tests/conftest.py: `explore demo --encoder bundled`
+        tables = _tables_from_run(run)
+    except pytest.FixtureLookupError:
+        pass
+    if tables is None:
+        from explore import collect, embed
+        from explore.encoders import load_encoder
+        from explore.study import study_from_dict
+
+        folder = _demo_folder(tmp_path_factory)
+        brands = pd.read_csv(folder / "truth_brands.csv")
+        out = tmp_path_factory.mktemp("demo_out")
+        study = study_from_dict({
+            "name": "demo-contexts", "output": str(out), "seed": 0,
+            "images": {"manifest": str(folder / "manifest.csv")},
+            "brands": dict(zip(brands.brand, brands.category)),
+            "encoder": {"name": "bundled"},
+        })
+        images = collect.collect_study_images(study, progress=False)
+        encoder, _ = load_encoder("bundled")
+        vectors, _ = embed.embed_table(images, encoder, cache_dir=out / "cache", progress=False)
+        tables = ctx.run_contexts(images, vectors.image_ids, vectors.cluster, vectors.joint, study.contexts,
+                                  seed=study.seed, encode_texts=encoder.encode_texts, encoder_id=encoder.id)
+        tables["images"] = images
+    truth_images = pd.read_csv(folder / "truth_images.csv")
+    truth_brands = pd.read_csv(folder / "truth_brands.csv", keep_default_na=False)
+    return tables, truth_images, truth_brands
+
+
+@pytest.mark.slow
+def test_demo_contexts_match_the_planted_ones(demo_contexts):
+    # Reference: sklearn.metrics.adjusted_rand_score between found and planted
+    # contexts, unassigned images left out. Found contexts are mapped to the
+    # planted context most of their images come from (majority).
+    from sklearn.metrics import adjusted_rand_score
+
+    tables, truth_images, truth_brands = demo_contexts
+    ic = tables["image_contexts"].merge(tables["images"][["image_id", "relpath"]], on="image_id")
+    ic = ic.merge(truth_images[["path", "brand", "context"]].rename(
+        columns={"path": "relpath", "context": "planted"}), on="relpath")
+    assert len(ic) == len(tables["image_contexts"]) == len(truth_images)
+    kept = ic[ic.context_id != ctx.UNASSIGNED_ID]
+    ari = adjusted_rand_score(kept.planted, kept.context_id)
+    planted_of = kept.groupby("context_id")["planted"].agg(lambda s: s.value_counts().index[0]).to_dict()
+    names = tables["contexts"].set_index("context_id")["context"].to_dict()
+    print(f"\ndemo: ARI {ari:.3f} over {len(kept)} assigned images; {len(ic) - len(kept)} unassigned; "
+          f"ARI with unassigned as one group {adjusted_rand_score(ic.planted, ic.context_id):.3f}")
+    for cid, planted in sorted(planted_of.items()):
+        share = (kept[kept.context_id == cid].planted == planted).mean()
+        print(f"  context {cid} '{names[cid]}' -> {planted} ({share:.0%} of its images)")
+    assert ari >= 0.5
+
+    sig = tables["signature_contexts"]
+    sig = sig[sig.source == "all"].assign(planted=lambda t: t.context_id.map(planted_of))
+    missing = []
+    for row in truth_brands.itertuples():
+        found = set(sig.loc[sig.brand == row.brand, "planted"])
+        print(f"  {row.brand}: planted signature {row.signature_contexts}; found "
+              + "; ".join(f"{r.context} ({r.planted}, index {r.index:.0f}, q {r.q_value:.1e})"
+                          for r in sig[sig.brand == row.brand].itertuples()))
+        missing += [(row.brand, c) for c in row.signature_contexts.split() if c not in found]
+    assert not missing, f"planted signature contexts not found: {missing}"
+
+    unexpected = tables["unexpected_contexts"].assign(
+        planted=lambda t: t.context_id.map(planted_of))
+    for row in truth_brands[truth_brands.unexpected_context != ""].itertuples():
+        hits = unexpected[(unexpected.brand == row.brand) & (unexpected.planted == row.unexpected_context)]
+        print(f"  unexpected for {row.brand}: planted {row.unexpected_context}; found "
+              + "; ".join(f"{r.context} [{r.source}] index {r.index:.0f}: {r.reason}" for r in hits.itertuples()))
+        assert len(hits), f"{row.brand}: planted unexpected context {row.unexpected_context} not reported"
+
+    gaps = tables["source_context_gaps"]
+    gaps = gaps[gaps.significant].assign(planted=lambda t: t.context_id.map(planted_of))
+    for column, direction in (("consumer_favours", "more in consumer photos"),
+                              ("owned_favours", "more in owned photos")):
+        for row in truth_brands[truth_brands[column] != ""].itertuples():
+            planted = getattr(row, column)
+            hits = gaps[(gaps.brand == row.brand) & (gaps.planted == planted) & (gaps.direction == direction)]
+            print(f"  {row.brand} {direction}: planted {planted}; found "
+                  + "; ".join(f"{r.context} consumer {r.consumer_count}/{r.consumer_n} vs owned "
+                              f"{r.owned_count}/{r.owned_n}, q {r.q_value:.1e}" for r in hits.itertuples()))
+            assert len(hits), f"{row.brand}: planted consumer-vs-owned difference in {planted} not found"
