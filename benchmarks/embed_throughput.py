@@ -1,0 +1,192 @@
+"""Embedding throughput on this machine: our pipeline vs a naive loop vs the model alone.
+
+For each encoder family it prints images per second for
+
+(a) ours: ``explore.embed.embed_table`` on a folder of generated phone-size
+    JPEGs (1600 x 1200), fresh cache, decoding overlapped with the model;
+(b) naive: the loop a newcomer writes from open_clip's README - open one
+    image, preprocess it, encode it, next image;
+(c) model: the encoder alone on pre-made tensors at our batch size (the upper
+    bound for (a): no decoding at all);
+
+and the ratios a/b and a/c. Targets: a/c >= 0.8 and a/b >= 2.
+
+``clip`` is timed with a randomly initialised open_clip ViT-B-32 (its speed
+does not depend on the weights), loaded through ``--weights`` like a real
+checkpoint; ``bundled`` is the real bundled encoder.
+
+Usage::
+
+    .venv/bin/python benchmarks/embed_throughput.py [--images 200] [--naive 48]
+        [--batch-size 32] [--families bundled clip]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+from PIL import Image
+
+
+def make_photos(folder: Path, n: int, size=(1600, 1200), seed: int = 0) -> None:
+    """Phone-size JPEGs with photo-like content: smooth shapes plus sensor-like grain."""
+    rng = np.random.default_rng(seed)
+    w, h = size
+    for i in range(n):
+        coarse = Image.fromarray((rng.random((9, 12, 3)) * 255).astype(np.uint8)).resize(size, Image.Resampling.BICUBIC)
+        pixels = np.asarray(coarse, dtype=np.int16) + rng.integers(-12, 13, size=(h, w, 1), dtype=np.int16)
+        brand = ("Alpha", "Beta")[i % 2]
+        source = ("consumer", "owned")[(i // 2) % 2]
+        path = folder / brand / source / f"photo{i:04d}.jpg"
+        path.parent.mkdir(parents=True, exist_ok=True)
+        Image.fromarray(np.clip(pixels, 0, 255).astype(np.uint8)).save(path, quality=90)
+
+
+def load(family: str, workdir: Path):
+    """-> (our encoder, naive (model, preprocess, encode_one))."""
+    import torch
+
+    from explore.encoders import load_encoder
+
+    if family == "clip":
+        import open_clip
+
+        model, _, preprocess = open_clip.create_model_and_transforms("ViT-B-32", pretrained=None)
+        weights = workdir / "random-vit-b-32.pt"
+        torch.save(model.state_dict(), weights)
+        encoder, _ = load_encoder("clip", model="ViT-B-32", weights=weights)
+        model.eval()
+
+        def naive_one(path):  # open_clip README: preprocess(Image.open(...)).unsqueeze(0), encode_image
+            image = preprocess(Image.open(path)).unsqueeze(0)
+            with torch.no_grad():
+                features = model.encode_image(image)
+                features /= features.norm(dim=-1, keepdim=True)
+            return features
+
+        return encoder, naive_one
+
+    encoder, _ = load_encoder("bundled")
+
+    def naive_one(path):  # the same loop with the bundled encoder's own calls
+        image = encoder.preprocess(Image.open(path).convert("RGB")).unsqueeze(0)
+        with torch.no_grad():
+            return encoder.encode_images(image)
+
+    return encoder, naive_one
+
+
+def bench_family(family: str, table, workdir: Path, batch_size: int, naive_n: int, default_threads: int) -> dict:
+    import torch
+
+    from explore.embed import available_cpus, embed_table
+
+    encoder, naive_one = load(family, workdir)
+    paths = table.loc[table["status"] == "ok", "path"].tolist()
+    n = len(paths)
+
+    # (c) the model alone at our batch size, on pre-made tensors. The first
+    # pass is a warm-up (the first call at each batch shape sets up kernels,
+    # and bundled embeds its label phrases once); then the best of two passes.
+    size = encoder.input_size
+    batches = [torch.randn(min(batch_size, n - i), 3, size, size) for i in range(0, n, batch_size)]
+    torch.set_num_threads(available_cpus())
+
+    def model_pass() -> tuple[float, float]:
+        start, cpu = time.perf_counter(), time.process_time()
+        with torch.inference_mode():
+            for batch in batches:
+                encoder.encode_images(batch)
+        return n / (time.perf_counter() - start), (time.process_time() - cpu) / n
+
+    model_pass()
+    model_rate, model_cpu = max(model_pass(), model_pass())
+
+    # (a) ours, on a fresh cache.
+    start, cpu = time.perf_counter(), time.process_time()
+    _, stats = embed_table(table, encoder, workdir / f"cache-{family}", batch_size=batch_size, progress=False)
+    ours_rate = n / (time.perf_counter() - start)
+    ours_cpu = (time.process_time() - cpu) / n
+    assert stats.embedded == n, stats.describe()
+
+    # (b) naive, one image at a time, torch's default thread count.
+    torch.set_num_threads(default_threads)
+    subset = paths[:naive_n]
+    naive_one(subset[0])  # warm-up at batch size 1
+    start, cpu = time.perf_counter(), time.process_time()
+    for path in subset:
+        naive_one(path)
+    naive_rate = len(subset) / (time.perf_counter() - start)
+    naive_cpu = (time.process_time() - cpu) / len(subset)
+    return {
+        "family": family,
+        "encoder": encoder.id,
+        "ours": ours_rate,
+        "naive": naive_rate,
+        "model": model_rate,
+        "ours_cpu": ours_cpu,
+        "naive_cpu": naive_cpu,
+        "model_cpu": model_cpu,
+    }
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--images", type=int, default=200, help="generated 1600x1200 JPEGs (default 200)")
+    parser.add_argument("--naive", type=int, default=48, help="images timed in the naive loop (default 48)")
+    parser.add_argument("--batch-size", type=int, default=32)
+    parser.add_argument("--families", nargs="+", default=["bundled", "clip"], choices=["bundled", "clip"])
+    args = parser.parse_args(argv)
+
+    import torch
+
+    from explore import collect
+    from explore.embed import available_cpus
+
+    default_threads = torch.get_num_threads()
+    load_avg = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"cpus available: {available_cpus()}, torch default threads: {default_threads}, "
+          f"load average (1 min) at start: {load_avg:.2f}")
+    with tempfile.TemporaryDirectory(prefix="explore-bench-") as tmp:
+        workdir = Path(tmp)
+        photos = workdir / "photos"
+        start = time.perf_counter()
+        make_photos(photos, args.images)
+        sizes = [p.stat().st_size for p in photos.rglob("*.jpg")]
+        print(f"generated {len(sizes)} JPEGs of 1600x1200, {np.mean(sizes) / 1e3:.0f} kB on average, "
+              f"in {time.perf_counter() - start:.1f} s")
+        start = time.perf_counter()
+        table = collect.collect_images(photos, progress=False)
+        seconds = time.perf_counter() - start
+        print(f"collect (hash, check, dHash): {len(table) / seconds:.1f} images/s")
+
+        rows = [
+            bench_family(f, table, workdir, args.batch_size, args.naive, default_threads) for f in args.families
+        ]
+
+    print()
+    print(f"{'family':<8} {'(a) ours':>10} {'(b) naive':>10} {'(c) model':>10} {'a/b':>6} {'a/c':>6}   images/s, batch {args.batch_size}")
+    for r in rows:
+        print(f"{r['family']:<8} {r['ours']:>10.1f} {r['naive']:>10.1f} {r['model']:>10.1f} "
+              f"{r['ours'] / r['naive']:>6.2f} {r['ours'] / r['model']:>6.2f}   {r['encoder']}")
+    print()
+    print("CPU time per image (all threads of this process; does not depend on other load):")
+    print(f"{'family':<8} {'(a) ours':>10} {'(b) naive':>10} {'(c) model':>10} {'c/a':>6}   ms of CPU per image")
+    for r in rows:
+        print(f"{r['family']:<8} {1e3 * r['ours_cpu']:>10.1f} {1e3 * r['naive_cpu']:>10.1f} "
+              f"{1e3 * r['model_cpu']:>10.1f} {r['model_cpu'] / r['ours_cpu']:>6.2f}")
+    load_avg = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"targets: a/c >= 0.8, a/b >= 2; load average (1 min) at end: {load_avg:.2f}")
+    print("On a busy machine the wall-clock figures mostly reflect how many threads each variant")
+    print("runs; c/a of CPU time is the a/c to expect when both keep all cores busy.")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
