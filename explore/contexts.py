@@ -194,9 +194,12 @@ def place_by_neighbours(
     The weights are UMAP's own fuzzy membership strengths,
     exp(-(d - rho) / sigma) with rho and sigma from ``umap.umap_.smooth_knn_dist``,
     and the weighted mean is how ``UMAP.transform`` initialises new points
-    (``umap.umap_.init_transform``). We stop there: the refinement epochs of
-    ``transform`` cost minutes at 100,000 images and hardly move points
-    between clusters.
+    (``umap.umap_.init_transform``). We stop there, before the refinement
+    epochs of ``transform``: measured here on 100,000 clustered 512-d vectors
+    (2 shared cores), ``UMAP.transform`` of the 80,000 images outside a
+    20,000 sample had not finished one layout after 6 minutes, while this
+    placement takes seconds and the contexts still matched the generating
+    clusters (adjusted Rand index 0.999, benchmarks/contexts_scale.py).
     """
     from umap.umap_ import smooth_knn_dist
 
@@ -864,10 +867,16 @@ def describe(tables: dict[str, pd.DataFrame]) -> list[str]:
         f"contexts: {len(real)} contexts found in {total} images; {unassigned} unassigned "
         f"({unassigned / max(total, 1):.1%}), kept as context -1",
         "contexts: settings used " + ", ".join(f"{k}={_plain(v)}" for k, v in settings.items()),
-        f"contexts: {len(tables['signature_contexts'])} signature, "
-        f"{len(tables['unexpected_contexts'])} unexpected, "
+        f"contexts: {_all(tables['signature_contexts'])} signature and "
+        f"{_all(tables['unexpected_contexts'])} unexpected brand contexts over all photos "
+        f"({len(tables['signature_contexts'])} and {len(tables['unexpected_contexts'])} counting the "
+        f"consumer-only and owned-only rows), "
         f"{int(gaps['significant'].sum()) if len(gaps) else 0} consumer-vs-owned differences",
     ]
+
+
+def _all(table: pd.DataFrame) -> int:
+    return int((table["source"] == "all").sum()) if len(table) else 0
 
 
 def _plain(value):

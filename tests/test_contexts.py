@@ -252,6 +252,16 @@ def test_parameters_scale_with_n_and_settings_win():
     assert (fixed["neighbours"], fixed["min_cluster_size"], fixed["min_samples"]) == (8, 25, 3)
 
 
+def test_study_refuses_bad_context_settings():
+    from explore.study import StudyError, study_from_dict
+
+    base = {"images": {"root": "."}}
+    assert study_from_dict({**base, "contexts": {"fdr": 0.1, "fit_sample": 5000}}).contexts.fdr == 0.1
+    for key, value in (("fdr", 1.5), ("min_cluster_size", 1), ("dominance_ratio", 0.5), ("fit_sample", 10)):
+        with pytest.raises(StudyError, match=f"contexts.{key}"):
+            study_from_dict({**base, "contexts": {key: value}})
+
+
 def test_exact_neighbours_match_sklearn():
     # Reference: sklearn.neighbors.NearestNeighbors(metric="cosine", algorithm="brute").
     from sklearn.neighbors import NearestNeighbors
@@ -391,15 +401,18 @@ def _demo_folder(tmp_path_factory) -> Path:
 
 
 def _tables_from_run(run) -> dict | None:
-    """The context tables written by the shared ``demo_run`` fixture, if it wrote them."""
-    folder = getattr(run, "output", run)
-    if not isinstance(folder, (str, Path)):
+    """The context tables written by the shared ``demo_run`` fixture (None: no output folder found).
+
+    ``explore demo`` must write the context tables: a run folder without them fails.
+    """
+    folder = run.get("output") if isinstance(run, dict) else getattr(run, "output", run)
+    if not isinstance(folder, (str, Path)) or not (Path(folder) / "run.json").is_file():
         return None
     folder = Path(folder)
-    names = ["images", "image_contexts", "contexts", "signature_contexts", "unexpected_contexts",
-             "source_context_gaps"]
-    if not all((folder / f"{n}.parquet").is_file() for n in names):
-        return None
+    names = ["images", "image_contexts", "contexts", "brand_contexts", "signature_contexts",
+             "unexpected_contexts", "source_context_gaps"]
+    lacking = [n for n in names if not (folder / f"{n}.parquet").is_file()]
+    assert not lacking, f"explore demo did not write {lacking} in {folder}"
     return {n: pd.read_parquet(folder / f"{n}.parquet") for n in names}
 
 
@@ -450,6 +463,9 @@ def test_demo_contexts_match_the_planted_ones(demo_contexts):
     ic = ic.merge(truth_images[["path", "brand", "context"]].rename(
         columns={"path": "relpath", "context": "planted"}), on="relpath")
     assert len(ic) == len(tables["image_contexts"]) == len(truth_images)
+    # unassigned images are kept and counted, never dropped
+    sizes = tables["contexts"].set_index("context_id")["size"]
+    assert sizes.sum() == len(ic) and sizes[ctx.UNASSIGNED_ID] == (ic.context_id == ctx.UNASSIGNED_ID).sum()
     kept = ic[ic.context_id != ctx.UNASSIGNED_ID]
     ari = adjusted_rand_score(kept.planted, kept.context_id)
     planted_of = kept.groupby("context_id")["planted"].agg(lambda s: s.value_counts().index[0]).to_dict()
