@@ -151,7 +151,9 @@ def cmd_embed(args) -> int:
     from explore.encoders import load_encoder
     from explore.run import write_tables
     from explore.study import DEFAULT_CLIP_MODEL, DEFAULT_CLIP_PRETRAINED
+    from explore.cache import check_not_busy
 
+    check_not_busy(args.out / "cache")  # refuse at once, not after collecting and loading a model
     source = args.source
     if source.suffix.lower() == ".csv":
         images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet)
