@@ -389,3 +389,16 @@ def test_lasso_selection_fills_the_gallery(opened, synthetic_report):
     assert inside > 0
     assert abs(selected - inside) <= 3
     assert p.locator("#gallery figure").count() == min(selected, 240)
+
+
+def test_report_without_stage_tables_opens_clean(browser, tmp_path):
+    out = synth.make_output_folder(tmp_path, 12, with_compare=False, with_contexts=False, with_attributes=False)
+    page = Opened(browser, write_report(out))
+    try:
+        assert page.errors == []
+        assert page.outside_requests() == []
+        text = page.page.locator("#context-map").inner_text()
+        assert "needs the contexts stage" in text
+        assert page.page.locator("#brand-select option").count() == 4
+    finally:
+        page.close()

@@ -490,6 +490,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         from bokeh.models import Spacer
 
         models = [Spacer(name="empty_spacer", width=1, height=1)]
+        plot_names.add("empty_spacer")
     from bokeh.document import Document
 
     doc = Document()
