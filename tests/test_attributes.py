@@ -650,36 +650,18 @@ ATTRIBUTE_TABLES = ["image_attributes", "attribute_definitions", "attribute_shar
 
 @pytest.fixture(scope="module")
 def demo_attributes(request):
-    """(output folder of `explore demo --encoder bundled`, truth_images) from the shared fixture."""
-    try:
-        run = request.getfixturevalue("demo_run")  # tests/conftest.py
-    except pytest.FixtureLookupError:
-        pytest.skip("the shared demo_run fixture (tests/conftest.py) is not there yet")
+    """(output folder of `explore demo --encoder bundled`, truth_images, truth_attributes)."""
+    for name in ("truth_images.csv", "truth_attributes.csv"):
+        if not (DEMO / name).is_file():
+            pytest.skip(f"demo_images/{name} is missing (regenerate with demo_images/make_demo.py)")
+    run = request.getfixturevalue("demo_run")  # tests/conftest.py: `explore demo --encoder bundled`
     folder = Path(getattr(run, "output", run))
-    truth = DEMO / "truth_images.csv"
-    if not truth.is_file():
-        pytest.skip("demo_images/truth_images.csv is missing")
-    return folder, pd.read_csv(truth)
-
-
-def planted_directions(truth_images: pd.DataFrame, attributes) -> list[tuple[str, str, str]]:
-    """(attribute, category, brand) where one brand's planted level stands out in its category:
-    at least 0.3 and at least twice the next brand's."""
-    out = []
-    for attribute in attributes:
-        if attribute not in truth_images.columns:
-            continue
-        levels = truth_images.groupby(["category", "brand"])[attribute].mean()
-        for category, part in levels.groupby(level=0):
-            ranked = part.droplevel(0).sort_values(ascending=False)
-            if len(ranked) > 1 and ranked.iloc[0] >= 0.3 and ranked.iloc[0] >= 2 * ranked.iloc[1]:
-                out.append((attribute, category, ranked.index[0]))
-    return out
+    return folder, pd.read_csv(DEMO / "truth_images.csv"), pd.read_csv(DEMO / "truth_attributes.csv")
 
 
 @pytest.mark.slow
 def test_demo_writes_the_attribute_tables(demo_attributes):
-    folder, truth = demo_attributes
+    folder, truth, _ = demo_attributes
     tables = {name: pd.read_parquet(folder / f"{name}.parquet") for name in ATTRIBUTE_TABLES}
     for name in ATTRIBUTE_TABLES:
         assert (folder / f"{name}.csv").is_file()
@@ -695,24 +677,28 @@ def test_demo_writes_the_attribute_tables(demo_attributes):
 
 @pytest.mark.slow
 def test_demo_planted_attribute_directions_are_recovered(demo_attributes):
-    folder, truth = demo_attributes
+    """For each attribute x category where the demo plants a leading brand
+    (truth_attributes.csv, planted_top), that brand has the highest mean
+    probability of its category with the bundled encoder."""
+    folder, truth, planted = demo_attributes
     shares = pd.read_parquet(folder / "attribute_shares.parquet")
     brand_rows = shares[(shares.level == "brand") & (shares.source == "all")]
-    planted = truth.groupby("brand")[[c for c in set(brand_rows.attribute) if c in truth.columns]].mean()
+    level = planted.set_index(["brand", "attribute"])["planted_level"]
     print()
     for attribute, part in brand_rows.groupby("attribute"):
-        print(f"{attribute}: brand, share [95% Wilson], mean probability [95% bootstrap], planted level")
+        print(f"{attribute}: share [95% Wilson], mean probability [95% bootstrap], planted level")
         for r in part.sort_values(["category", "brand"]).itertuples():
-            level = f"{planted.loc[r.brand, attribute]:.2f}" if attribute in planted.columns else "-"
-            print(f"  {r.category:<8} {r.brand:<10} share {r.share:.2f} [{r.share_low:.2f}, {r.share_high:.2f}] "
-                  f"mean p {r.mean_probability:.3f} [{r.mean_low:.3f}, {r.mean_high:.3f}] planted {level}")
-    directions = planted_directions(truth, set(brand_rows.attribute))
-    assert directions, "the demo study scores none of the attributes the demo plants"
+            lv = level.get((r.brand, attribute), float("nan"))
+            print(f"  {r.category:<8} {r.brand:<10} share {r.share:.2f} [{r.share_low:.2f}, {r.share_high:.2f}]"
+                  f"  mean p {r.mean_probability:.3f} [{r.mean_low:.3f}, {r.mean_high:.3f}]  planted {lv:.2f}")
+    tops = planted[planted.planted_top.astype(str).str.lower() == "true"]
+    tops = tops[tops.attribute.isin(set(brand_rows.attribute))]
+    assert len(tops), "the demo study scores none of the attributes the demo plants a direction for"
     missed = []
-    for attribute, category, brand in directions:
-        part = brand_rows[(brand_rows.attribute == attribute) & (brand_rows.category == category)]
-        top = part.sort_values("mean_probability", ascending=False).brand.iloc[0]
-        print(f"planted: {brand} leads {category} on {attribute}; found leader: {top}")
-        if top != brand:
-            missed.append(f"{attribute}/{category}: planted {brand}, found {top}")
+    for t in tops.itertuples():
+        part = brand_rows[(brand_rows.attribute == t.attribute) & (brand_rows.category == t.category)]
+        found = part.sort_values("mean_probability", ascending=False).brand.iloc[0]
+        print(f"planted: {t.brand} leads {t.category} on {t.attribute}; found: {found}")
+        if found != t.brand:
+            missed.append(f"{t.attribute}/{t.category}: planted {t.brand}, found {found}")
     assert not missed, missed
