@@ -117,7 +117,12 @@ class ImageProblem(Exception):
 # Decoding
 
 
-def open_rgb(path: str | Path, draft_size: int | None = None, max_pixels: int = MAX_PIXELS) -> Image.Image:
+def open_rgb(
+    path: str | Path,
+    draft_size: int | None = None,
+    max_pixels: int = MAX_PIXELS,
+    expect_sha256: str | None = None,
+) -> Image.Image:
     """Decode one image file to an upright 8-bit RGB PIL image.
 
     Parameters
@@ -129,6 +134,8 @@ def open_rgb(path: str | Path, draft_size: int | None = None, max_pixels: int = 
         small. Other formats are decoded in full, then shrunk by a whole
         factor (box filter) while both sides stay at least this size.
     max_pixels : images larger than this are refused (decompression bombs).
+    expect_sha256 : when given, the file's bytes must still hash to this
+        (so vectors are never stored under the hash of other content).
 
     Returns
     -------
@@ -137,9 +144,12 @@ def open_rgb(path: str | Path, draft_size: int | None = None, max_pixels: int = 
     Raises
     ------
     ImageProblem with ``status`` one of ``empty``, ``unreadable``, ``not_image``,
-    ``too_large``, ``truncated``, ``corrupt``.
+    ``too_large``, ``truncated``, ``corrupt``, or ``changed`` (content differs
+    from ``expect_sha256``).
     """
     data = _read_bytes(Path(path))
+    if expect_sha256 is not None and hashlib.sha256(data).hexdigest() != expect_sha256:
+        raise ImageProblem("changed", "the file's content changed since it was collected")
     image, _ = _decode(data, draft_size, max_pixels)
     return image
 

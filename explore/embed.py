@@ -153,13 +153,11 @@ def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, deco
     workers = decode_workers or min(2, cpus)
     draft = 2 * int(encoder.input_size)
 
-    def load(path: str):
+    def load(sha: str, path: str):
         try:
-            return encoder.preprocess(open_rgb(path, draft_size=draft))
+            return encoder.preprocess(open_rgb(path, draft_size=draft, expect_sha256=sha))
         except ImageProblem as problem:
-            raise EmbedError(
-                f"{path}: {problem.reason} (it was readable when collected; run again to re-collect)"
-            ) from None
+            raise EmbedError(f"{path}: {problem.reason} (during this run; run again to re-collect)") from None
 
     batches = [todo[i : i + batch_size] for i in range(0, len(todo), batch_size)]
     ahead = 2  # batches decoded ahead of the model
@@ -170,11 +168,11 @@ def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, deco
     try:
         with tqdm(total=len(todo), desc="embed", unit="img", disable=not progress) as bar, torch.inference_mode():
             for batch in batches[:ahead]:
-                pending.append([pool.submit(load, path) for _, path in batch])
+                pending.append([pool.submit(load, sha, path) for sha, path in batch])
             for k, batch in enumerate(batches):
                 futures = pending.popleft()
                 if k + ahead < len(batches):
-                    pending.append([pool.submit(load, path) for _, path in batches[k + ahead]])
+                    pending.append([pool.submit(load, sha, path) for sha, path in batches[k + ahead]])
                 tensors = [f.result() for f in futures]
                 out = encoder.encode_images(torch.stack(tensors))
                 cluster = _check(out, "cluster", len(batch), encoder.id)

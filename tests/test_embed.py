@@ -173,6 +173,17 @@ def test_file_gone_since_collect_is_a_clear_error(tmp_path):
         assert table.loc[0, "sha256"] in cache
 
 
+def test_file_changed_since_collect_is_never_cached_under_the_old_hash(tmp_path):
+    make_tree(tmp_path / "photos", 2)
+    table = collect.collect_images(tmp_path / "photos", progress=False)
+    changed = Path(table.loc[1, "path"])
+    photo(999).save(changed, quality=90)  # still a fine image, other content
+    with pytest.raises(EmbedError, match=f"{changed.name}.*changed since it was collected"):
+        embed_table(table, FakeEncoder(), tmp_path / "cache", batch_size=1, progress=False)
+    with EmbeddingCache(tmp_path / "cache", "fake-v1") as cache:
+        assert table.loc[0, "sha256"] in cache and table.loc[1, "sha256"] not in cache
+
+
 def test_encoder_output_is_checked(tmp_path):
     make_tree(tmp_path / "photos", 2)
     table = collect.collect_images(tmp_path / "photos", progress=False)
