@@ -10,9 +10,10 @@ softmax of its scaled cosine similarities to the two sides, which is
 
     p = sigmoid(scale * (s_pos - s_neg) + bias)
 
-with the encoder's ``logit_scale`` (CLIP's learned temperature for ``clip``) and
-``logit_bias`` (0 for ``clip``; see ``explore/encoders/bundled.py`` for the
-bundled encoder's choice). Scoring is one matrix product over cached vectors:
+with the encoder's ``logit_scale`` (CLIP's learned temperature for ``clip``;
+a Platt-fitted 10 for ``bundled``, see ``explore/encoders/bundled.py``) and a
+bias: 0 for ``clip``; for ``bundled``, the one per prompt pair that puts an
+uninformative image at exactly 0.5 (:func:`attribute_bias`). Scoring is one matrix product over cached vectors:
 a new attribute never re-embeds an image.
 
 Brand metrics are shares of positive calls with Wilson intervals (Wilson 1927),
@@ -261,6 +262,37 @@ def platt_common_slope(margins: Sequence[np.ndarray], labels: Sequence[np.ndarra
     return float(model.coef_[0, 0])
 
 
+def neutral_vector(encoder) -> np.ndarray | None:
+    """The joint vector of an image the encoder can say nothing about, for families that have one.
+
+    For ``bundled`` (ConSE) this is the normalised mean of the embeddings of the
+    1000 ImageNet class phrases: an image's ConSE vector is a convex
+    combination of those phrases, and with no preference among classes it
+    tends to their mean. ``clip`` has none (its learned scale is used as is).
+    """
+    if getattr(encoder, "family", "") != "bundled" or not hasattr(encoder, "label_embeddings"):
+        return None
+    centre = np.asarray(encoder.label_embeddings(), dtype=np.float64).mean(axis=0)
+    return (centre / np.linalg.norm(centre)).astype(np.float32)
+
+
+def attribute_bias(encoder, vectors: "AttributeVectors", neutral: np.ndarray | None = None) -> float:
+    """The bias used for one prompt pair.
+
+    The encoder's ``logit_bias``, and for a family with a neutral vector (see
+    :func:`neutral_vector`) minus ``logit_scale`` times the neutral vector's
+    margin, so that an uninformative image scores exactly 0.5 on every
+    attribute. Without that, one side of a pair is often closer to every
+    image in the ConSE space (a wording effect), and the shares of all brands
+    pile up near 0 or 1. The correction changes sign with the sides, so
+    swapping them still gives 1 - p.
+    """
+    bias = float(encoder.logit_bias)
+    if neutral is not None:
+        bias -= float(encoder.logit_scale) * float(neutral @ (vectors.positive - vectors.negative))
+    return bias
+
+
 def probe_probabilities(vectors: np.ndarray, coef: Sequence[float], intercept: float) -> np.ndarray:
     """Probabilities from a saved linear probe: sigmoid(X w + b)."""
     w = np.asarray(coef, dtype=np.float32)
@@ -335,6 +367,7 @@ def score_attributes(
     """
     saved_checks = saved_checks or {}
     long_tables, definitions, notes = [], [], []
+    neutral = neutral_vector(encoder) if attributes else None
     ids = np.asarray(list(image_ids), dtype=object)
     for attribute in attributes:
         vectors = attribute_vectors(attribute, scoring.templates, encoder.encode_texts)
@@ -342,6 +375,7 @@ def score_attributes(
         if note:
             notes.append(f"attribute '{attribute.name}': {note}")
         threshold, threshold_from = resolve_threshold(attribute, scoring, saved)
+        bias = attribute_bias(encoder, vectors, neutral)
         if saved and saved.get("probe"):
             probe = saved["probe"]
             source = cluster if probe.get("vectors", "cluster") == "cluster" else joint
@@ -349,7 +383,7 @@ def score_attributes(
             scored_by = "probe"
         else:
             probability = pair_probabilities(
-                joint, vectors.positive, vectors.negative, encoder.logit_scale, encoder.logit_bias
+                joint, vectors.positive, vectors.negative, encoder.logit_scale, bias
             )
             scored_by = "zero-shot"
         long_tables.append(
@@ -373,7 +407,7 @@ def score_attributes(
                 "threshold_from": threshold_from,
                 "scored_by": scored_by,
                 "logit_scale": float(encoder.logit_scale),
-                "logit_bias": float(encoder.logit_bias),
+                "logit_bias": bias,
                 "prompts_digest": prompts_digest(vectors),
                 "encoder_id": encoder.id,
             }
@@ -1025,7 +1059,8 @@ def check_attribute(
         )
         return result
 
-    p = pair_probabilities(joint, vectors.positive, vectors.negative, encoder.logit_scale, encoder.logit_bias)
+    bias = attribute_bias(encoder, vectors, neutral_vector(encoder))
+    p = pair_probabilities(joint, vectors.positive, vectors.negative, encoder.logit_scale, bias)
     result.auc, result.auc_low, result.auc_high = auc_interval(y, p)
     result.mann_whitney_p = float(mannwhitneyu(p[y == 1], p[y == 0], alternative="greater").pvalue)
     result.better_than_chance = bool(result.auc_low > 0.5)

@@ -209,16 +209,32 @@ def test_platt_common_slope_recovers_a_planted_scale_and_matches_statsmodels():
     assert slope == pytest.approx(12.0, abs=3 * ref.bse[0])
 
 
-def test_bundled_bias_is_zero_so_swapping_sides_gives_one_minus_p():
+def test_bundled_bias_puts_a_neutral_image_at_one_half_and_keeps_side_symmetry():
     from explore.encoders.bundled import BUNDLED_LOGIT_BIAS, BUNDLED_LOGIT_SCALE
 
-    images = _unit(np.random.default_rng(1).normal(size=(50, 16)))
-    pos, neg = _unit(np.ones(16)), _unit(np.arange(16.0))
-    p = A.pair_probabilities(images, pos, neg, BUNDLED_LOGIT_SCALE, BUNDLED_LOGIT_BIAS)
-    q = A.pair_probabilities(images, neg, pos, BUNDLED_LOGIT_SCALE, BUNDLED_LOGIT_BIAS)
-    # A two-way softmax is symmetric in its two classes (Radford et al. 2021 scoring).
+    class ConseLike(HashTextEncoder):
+        def label_embeddings(self):
+            return self.encode_texts([f"class {i}" for i in range(50)])
+
+    enc = ConseLike(dim=16, scale=BUNDLED_LOGIT_SCALE, bias=BUNDLED_LOGIT_BIAS)
+    enc.family = "bundled"
+    neutral = A.neutral_vector(enc)
+    mean = enc.label_embeddings().mean(axis=0)
+    np.testing.assert_allclose(neutral, mean / np.linalg.norm(mean), atol=1e-6)
+    attr = Attribute("sunny", ["bright sunshine"], ["grey overcast"])
+    flipped = Attribute("gloomy", ["grey overcast"], ["bright sunshine"])
+    vec, vec_flipped = (A.attribute_vectors(a, ["{}"], enc.encode_texts) for a in (attr, flipped))
+    images = np.vstack([neutral, _unit(np.random.default_rng(1).normal(size=(30, 16)))])
+    p = A.pair_probabilities(images, vec.positive, vec.negative, enc.logit_scale, A.attribute_bias(enc, vec, neutral))
+    q = A.pair_probabilities(images, vec_flipped.positive, vec_flipped.negative, enc.logit_scale,
+                             A.attribute_bias(enc, vec_flipped, neutral))
+    assert p[0] == pytest.approx(0.5, abs=1e-6)  # the uninformative image sits on the fence
+    # A two-way softmax is symmetric in its two classes (Radford et al. 2021 scoring): swapping
+    # the sides gives 1 - p.
     np.testing.assert_allclose(p + q, 1.0, atol=1e-6)
-    assert 1.0 < BUNDLED_LOGIT_SCALE < 100.0
+    # The encoder's own bias is all there is for a family without a neutral vector (clip).
+    assert A.neutral_vector(HashTextEncoder()) is None
+    assert A.attribute_bias(HashTextEncoder(bias=0.25), vec, None) == 0.25
 
 
 @pytest.fixture(scope="module")
