@@ -43,7 +43,7 @@ def write_report(output_folder: str | Path, study=None) -> Path:
     from explore.report.page import build_page
     from explore.study import ReportSettings
 
-    folder = Path(output_folder)
+    folder = Path(output_folder).resolve()
     out = load_output(folder)
     defaults = ReportSettings()
     recorded = (out.run.get("settings") or {}) if out.run else {}
