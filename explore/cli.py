@@ -133,6 +133,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_report)
     # --- end report -----------------------------------------------------------------
 
+    # --- init (explore/starter.py) ----------------------------------------------------
+    p = sub.add_parser(
+        "init",
+        help="write a starter study file for a folder of photos FOLDER/<brand>/<source>/...",
+        description="Write a study file naming the brands and sources found under FOLDER, "
+        "the default attributes (Aaker's five brand-personality dimensions), encoder auto "
+        "and an output folder; then run it with 'explore run STUDY'.",
+    )
+    p.add_argument("folder", type=Path, help="images root laid out as FOLDER/<brand>/<consumer|owned>/...")
+    p.add_argument("--out", type=Path, help="study file to write (default: FOLDER/study.toml)")
+    p.add_argument("--force", action="store_true", help="replace the study file if it exists")
+    p.set_defaults(func=cmd_init)
+    # --- end init ---------------------------------------------------------------------
+
     return parser
 
 
@@ -225,6 +239,19 @@ def cmd_check(args) -> int:
         print(result.describe())
     print(f"tables: {study.output / 'attribute_check.csv'} (and _reliability, _descriptions)")
     return 0
+
+
+# --- init (explore/starter.py) ------------------------------------------------------
+def cmd_init(args) -> int:
+    from explore.starter import find_brands, write_starter_study
+
+    path = write_starter_study(args.folder, args.out, force=args.force)
+    brands = {b: s for b, s in find_brands(args.folder).items() if s}
+    print(f"study: {path}")
+    print(f"brands: {len(brands)} ({', '.join(brands)})")
+    print(f"next: explore run {path}")
+    return 0
+# --- end init -----------------------------------------------------------------------
 
 
 # --- report (explore/report/) -------------------------------------------------------
