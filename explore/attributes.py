@@ -11,7 +11,7 @@ softmax of its scaled cosine similarities to the two sides, which is
     p = sigmoid(scale * (s_pos - s_neg) + bias)
 
 with the encoder's ``logit_scale`` (CLIP's learned temperature for ``clip``;
-a Platt-fitted 10 for ``bundled``, see ``explore/encoders/bundled.py``) and a
+a Platt-fitted 15 for ``bundled``, see ``explore/encoders/bundled.py``) and a
 bias: 0 for ``clip``; for ``bundled``, the one per prompt pair that puts an
 uninformative image at exactly 0.5 (:func:`attribute_bias`). Scoring is one matrix product over cached vectors:
 a new attribute never re-embeds an image.

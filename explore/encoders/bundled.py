@@ -47,11 +47,12 @@ DEFAULT_LABEL_TEMPLATE = "a photo of a {name}"
 #: Scale and bias for p = sigmoid(scale * (s_pos - s_neg) + bias). The scale is a
 #: Platt fit (Platt 1999: logistic regression of labels on the margin s_pos - s_neg,
 #: one slope shared by all pairs, an intercept per pair) on the demo scenario's
-#: planted levels, over the prompt pairs with signal (image AUC > 0.6): slope 9.8,
-#: pairs alone 6 to 17. Refit: explore.attributes.platt_common_slope. The bias is
-#: 0 here; explore.attributes.attribute_bias adds, per prompt pair, the shift that
-#: puts an uninformative image (the mean class-phrase vector) at exactly 0.5.
-BUNDLED_LOGIT_SCALE = 10.0
+#: planted 0/1 levels with the demo study's six prompt pairs: common slope 15.1,
+#: pairs alone 12 to 31 (tests/test_attributes.py refits it on every demo run;
+#: explore.attributes.platt_common_slope). The bias is 0 here;
+#: explore.attributes.attribute_bias adds, per prompt pair, the shift that puts an
+#: uninformative image (the mean class-phrase vector) at exactly 0.5.
+BUNDLED_LOGIT_SCALE = 15.0
 BUNDLED_LOGIT_BIAS = 0.0
 
 IMAGE_ARCH = "efficientnet_lite0"
