@@ -648,8 +648,13 @@ def brand_maps(metrics: pd.DataFrame, *, min_brands: int = MIN_BRANDS) -> tuple[
     (V S / sqrt(n) for population-standardised data), so a biplot (Gabriel
     1971) draws brands as points and attributes as arrows from the origin.
     The owned and survey maps are then aligned onto the consumer map by
-    Procrustes (fitted on the brands both maps hold); the consumer map is its
-    own alignment.
+    Procrustes on the two map coordinates (rotation or reflection, uniform
+    scale and shift; fitted on the brands both maps hold), which removes the
+    arbitrary orientation of each PCA so the maps can be read side by side.
+    The consumer map is its own alignment. Because each map keeps only two
+    components, a brand's displacement between aligned maps is a picture;
+    :func:`profile_distances` measures the same difference over every
+    attribute.
 
     Returns
     -------
@@ -836,6 +841,34 @@ def brand_vector_map(images: pd.DataFrame, embeddings, *, vectors: str = "cluste
     return table[cols], {"distances": pd.DataFrame(dist, index=labels, columns=labels), "fit": mds["fit"]}
 
 
+def profile_distances(metrics: pd.DataFrame, reference: str, other: str) -> pd.Series:
+    """Distance per brand between its standardised profiles under two metrics.
+
+    Each metric's brands x attributes profile is standardised per attribute
+    over all brands (as for the brand maps); a brand's distance is the root
+    mean square over the shared attributes of the difference between its two
+    standardised profiles. It is what the map displacement shows in 2-D, but
+    measured over every attribute, so nothing is lost to the projection or
+    the alignment. 0 = the brand stands out (or not) among the brands in the
+    same way under both metrics; about 1.4 = as different as two unrelated
+    profiles (sqrt(2), both having unit variance).
+
+    Returns
+    -------
+    Series indexed by brand (NaN for brands lacking either profile).
+    """
+    a, b = profile_matrix(metrics, reference), profile_matrix(metrics, other)
+    attrs = sorted(set(a.columns) & set(b.columns))
+    brands = sorted(set(a.index) & set(b.index))
+    if len(brands) < 2 or not attrs:
+        return pd.Series(dtype=float)
+    za, _ = standardise(a.loc[:, attrs].to_numpy())
+    zb, _ = standardise(b.loc[:, attrs].to_numpy())
+    za = pd.DataFrame(za, index=a.index, columns=attrs).loc[brands]
+    zb = pd.DataFrame(zb, index=b.index, columns=attrs).loc[brands]
+    return ((za - zb) ** 2).mean(axis=1).pow(0.5)
+
+
 def brand_displacement(
     brand_map: pd.DataFrame,
     vector_map: pd.DataFrame | None,
@@ -849,8 +882,10 @@ def brand_displacement(
     DataFrame, one row per brand: ``brand``, ``category``, ``consumer_x``,
     ``consumer_y``, ``owned_x``, ``owned_y``, ``displacement`` (consumer to
     owned, in consumer-map units after alignment), ``survey_x``, ``survey_y``,
-    ``survey_displacement`` (consumer to survey), ``owned_rank_gap`` and
-    ``survey_rank_gap`` (see :func:`rank_gaps`, against consumer share),
+    ``survey_displacement`` (consumer to survey), ``owned_profile_distance``
+    and ``survey_profile_distance`` (see :func:`profile_distances`, against
+    consumer share), ``owned_rank_gap`` and ``survey_rank_gap`` (see
+    :func:`rank_gaps`, against consumer share),
     ``vector_distance`` (cosine distance between the brand's consumer and owned
     mean image vectors) and ``vector_displacement`` (the same pair's distance
     on the 2-D vector map), sorted by displacement, largest first.
@@ -863,6 +898,9 @@ def brand_displacement(
         out[f"{source}_y"] = part["aligned_y"].reindex(out.index)
     out["displacement"] = np.hypot(out["owned_x"] - out["consumer_x"], out["owned_y"] - out["consumer_y"])
     out["survey_displacement"] = np.hypot(out["survey_x"] - out["consumer_x"], out["survey_y"] - out["consumer_y"])
+    for name, metric in (("owned_profile_distance", "owned_share"), ("survey_profile_distance", "survey_score")):
+        dist = profile_distances(metrics, "consumer_share", metric) if metrics[metric].notna().any() else pd.Series(dtype=float)
+        out[name] = dist.reindex(out.index).astype(float)
     for name, metric in (("owned_rank_gap", "owned_share"), ("survey_rank_gap", "survey_score")):
         gaps = rank_gaps(metrics, metric).set_index("brand")["rank_gap"] if metrics[metric].notna().any() else pd.Series(dtype=float)
         out[name] = gaps.reindex(out.index).astype(float)
@@ -879,7 +917,8 @@ def brand_displacement(
     out = out.reset_index()
     cols = [
         "brand", "category", "consumer_x", "consumer_y", "owned_x", "owned_y", "displacement",
-        "survey_x", "survey_y", "survey_displacement", "owned_rank_gap", "survey_rank_gap",
+        "survey_x", "survey_y", "survey_displacement", "owned_profile_distance",
+        "survey_profile_distance", "owned_rank_gap", "survey_rank_gap",
         "vector_distance", "vector_displacement",
     ]
     return out[cols].sort_values("displacement", ascending=False, na_position="last").reset_index(drop=True)
@@ -956,15 +995,25 @@ def summarise(tables: dict[str, pd.DataFrame], *, top: int = 2) -> list[str]:
     if disp is not None and len(disp):
         moved = disp.dropna(subset=["displacement"]).sort_values("displacement", ascending=False)
         if len(moved):
-            lines.append(
-                "brand map, consumer -> owned, moves most: "
-                + ", ".join(f"{r.brand} ({r.displacement:.2f})" for r in moved.head(top).itertuples())
+            line = "brand map, consumer -> owned photos, moves most: " + ", ".join(
+                f"{r.brand} ({r.displacement:.2f})" for r in moved.head(top).itertuples()
             )
-        gap = disp.dropna(subset=["survey_rank_gap"]).sort_values("survey_rank_gap", ascending=False)
-        if len(gap):
+            far = moved.dropna(subset=["owned_profile_distance"]).sort_values("owned_profile_distance", ascending=False)
+            if len(far):
+                line += "; most different attribute profiles: " + ", ".join(
+                    f"{r.brand} ({r.owned_profile_distance:.2f})" for r in far.head(top).itertuples()
+                )
+            lines.append(line)
+        far = disp.dropna(subset=["survey_profile_distance"]).sort_values("survey_profile_distance", ascending=False)
+        if len(far):
             lines.append(
-                "survey vs consumer photos, largest mean rank gap: "
-                + ", ".join(f"{r.brand} ({r.survey_rank_gap:.2f})" for r in gap.head(top).itertuples())
+                "survey vs consumer photos, most different attribute profiles: "
+                + ", ".join(f"{r.brand} ({r.survey_profile_distance:.2f})" for r in far.head(top).itertuples())
+                + "; largest mean rank gap within category: "
+                + ", ".join(
+                    f"{r.brand} ({r.survey_rank_gap:.2f})"
+                    for r in far.sort_values("survey_rank_gap", ascending=False).head(top).itertuples()
+                )
             )
         vec = disp.dropna(subset=["vector_distance"]).sort_values("vector_distance", ascending=False)
         if len(vec):

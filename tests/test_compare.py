@@ -389,3 +389,18 @@ def test_summary_names_best_and_worst_attributes(tmp_path):
     assert "sincere (0/6 pairs)" in worst and "sincere" not in best
     per = compare.attribute_agreement(tables["agreement"], "consumer_share", "survey_score")
     assert per.iloc[-1]["attribute"] == "sincere" and per.iloc[0]["concordant_share"] == 1.0
+
+
+def test_profile_distance_is_rms_of_standardised_profile_differences():
+    consumer, owned = random_profiles(71), random_profiles(72)
+    metrics = compare.brand_metrics(make_shares(consumer, owned))
+    got = compare.profile_distances(metrics, "consumer_share", "owned_share")
+    a = pd.DataFrame(consumer).T.sort_index()[sorted(ATTRIBUTES)]
+    b = pd.DataFrame(owned).T.sort_index()[sorted(ATTRIBUTES)]
+    # reference: sklearn.preprocessing.StandardScaler per attribute, then numpy RMS
+    diff = StandardScaler().fit_transform(a) - StandardScaler().fit_transform(b)
+    expected = np.sqrt((diff**2).mean(axis=1))
+    assert np.allclose(got.loc[a.index].to_numpy(), expected, atol=1e-12)
+    # identical profiles (up to a linear change of scale, as a survey scale is) -> 0
+    same = compare.brand_metrics(make_shares(consumer, {k: {x: 3 * v + 1 for x, v in p.items()} for k, p in consumer.items()}))
+    assert np.allclose(compare.profile_distances(same, "consumer_share", "owned_share"), 0.0, atol=1e-12)
