@@ -641,6 +641,26 @@ def test_check_command_reports_saves_and_reuses(labelled_tree, capsys):
     again = pd.read_csv(labelled_tree / "out" / "attribute_check.csv").iloc[0]
     assert again.threshold_from.startswith("check") and again.threshold == pytest.approx(row.best_threshold)
 
+    # Later scoring of the study (the run's attributes stage) uses the saved probe.
+    from explore import collect, embed
+    from explore.encoders import load_encoder
+    from explore.run import read_saved_checks
+    from explore.study import load_study
+
+    loaded = load_study(labelled_tree / "study.toml")
+    images = collect.collect_study_images(loaded, progress=False)
+    encoder, _ = load_encoder("bundled")
+    vectors, stats = embed.embed_table(images, encoder, cache_dir=loaded.output / "cache", progress=False)
+    assert stats.embedded == 0  # scoring never re-embeds: everything comes from the cache
+    tables, notes = A.attribute_tables(images, vectors.image_ids, vectors.joint, vectors.cluster,
+                                       loaded.attributes, loaded.scoring, encoder,
+                                       saved_checks=read_saved_checks(loaded.output))
+    definition = tables["attribute_definitions"].iloc[0]
+    assert definition.scored_by == "probe" and definition.threshold_from == "check (probe, Youden J)"
+    probe = saved["animal"]["probe"]
+    expected = 1 / (1 + np.exp(-(vectors.cluster.astype(np.float64) @ np.array(probe["coef"]) + probe["intercept"])))
+    np.testing.assert_allclose(tables["image_attributes"].probability, expected, rtol=1e-4, atol=1e-6)
+
 
 def test_check_command_refuses_bad_inputs(labelled_tree, tmp_path, capsys):
     from explore.cli import main
