@@ -7,6 +7,7 @@ session fixture ``demo_run`` from conftest.py.
 
 from __future__ import annotations
 
+from pathlib import Path
 from types import SimpleNamespace
 
 import numpy as np
@@ -404,3 +405,71 @@ def test_profile_distance_is_rms_of_standardised_profile_differences():
     # identical profiles (up to a linear change of scale, as a survey scale is) -> 0
     same = compare.brand_metrics(make_shares(consumer, {k: {x: 3 * v + 1 for x, v in p.items()} for k, p in consumer.items()}))
     assert np.allclose(compare.profile_distances(same, "consumer_share", "owned_share"), 0.0, atol=1e-12)
+
+
+# --------------------------------------------------------------------------
+# The demo scenario (session fixture ``demo_run`` in conftest.py runs
+# ``explore demo --encoder bundled`` once). demo_images/truth_*.csv record what
+# the scenario plants: which attributes have a planted direction per category,
+# and which brand's invented survey contradicts its photos.
+
+DEMO = Path(__file__).resolve().parent.parent / "demo_images"
+COMPARE_TABLES = ["survey", "agreement", "brand_map", "brand_map_loadings", "brand_vector_map", "brand_displacement"]
+
+
+@pytest.mark.slow
+def test_demo_writes_comparison_tables_and_prints_summary(demo_run):
+    for name in COMPARE_TABLES:
+        assert (demo_run / f"{name}.csv").is_file() and (demo_run / f"{name}.parquet").is_file(), name
+    survey = pd.read_parquet(demo_run / "survey.parquet")
+    assert len(survey) == len(pd.read_csv(DEMO / "survey.csv")) and (survey["status"] == "used").all()
+    agreement = pd.read_parquet(demo_run / "agreement.parquet")
+    assert {"consumer_share", "owned_share"} <= set(agreement["metric_a"])
+    assert set(pd.read_parquet(demo_run / "brand_map.parquet")["source"]) == set(compare.MAP_SOURCES)
+    vector_map = pd.read_parquet(demo_run / "brand_vector_map.parquet")
+    assert len(vector_map) == 6 * 3 and vector_map["n_images"].min() > 0
+    stdout = (demo_run / "demo_stdout.txt").read_text(encoding="utf-8")
+    summary = [line for line in stdout.splitlines() if line.startswith("compare: ")]
+    print("\n".join(summary))
+    assert any(line.startswith("compare: agreement consumer photos vs survey") for line in summary)
+    assert any(line.startswith("compare: brand map, consumer -> owned photos, moves most") for line in summary)
+    assert any(line.startswith("compare: survey vs consumer photos, most different") for line in summary)
+
+
+@pytest.mark.slow
+def test_demo_survey_agrees_where_planted_and_the_contradicted_brand_stands_out(demo_run):
+    truth = pd.read_csv(DEMO / "truth_attributes.csv")
+    brands = pd.read_csv(DEMO / "truth_brands.csv")
+    disagreeing = brands.loc[~brands["survey_agrees"], "brand"].tolist()
+    assert len(disagreeing) == 1
+    disagreeing = disagreeing[0]
+
+    agreement = pd.read_parquet(demo_run / "agreement.parquet")
+    rows = agreement[(agreement["metric_a"] == "consumer_share") & (agreement["metric_b"] == "survey_score")]
+    planted = truth[truth["direction_planted"]].groupby(["category", "attribute"])["survey_agrees"].all()
+    rows = rows.merge(planted.rename("survey_planted_to_agree").reset_index(), on=["category", "attribute"])
+    pd.set_option("display.width", 200)
+    print(rows[["category", "attribute", "survey_planted_to_agree", "n_brands", "concordant", "discordant",
+                "ties", "concordant_share", "kendall_tau", "pearson_r", "note"]].to_string())
+    agree = rows[rows["survey_planted_to_agree"]]
+    contra = rows[~rows["survey_planted_to_agree"]]
+    agree_share = agree["concordant"].sum() / agree["pairs"].sum()
+    contra_share = contra["concordant"].sum() / contra["pairs"].sum()
+    print(f"pooled concordant share: planted to agree {agree_share:.2f}, planted to disagree {contra_share:.2f}")
+    # Judgement thresholds for this scenario (not a published figure): where the
+    # survey was made from the planted levels, photos and survey rank most brand
+    # pairs alike; where it was made to contradict them, most pairs are reversed.
+    assert agree_share >= 0.75
+    assert contra_share <= 0.5
+
+    disp = pd.read_parquet(demo_run / "brand_displacement.parquet").set_index("brand")
+    print(disp[["category", "displacement", "survey_displacement", "owned_profile_distance",
+                "survey_profile_distance", "survey_rank_gap", "vector_distance"]].round(3).to_string())
+    # the brand whose survey contradicts its photos differs most from its photos
+    assert disp["survey_profile_distance"].idxmax() == disagreeing
+    assert disp["survey_profile_distance"].rank(ascending=False)[disagreeing] == 1
+    # the brand planted with different consumer and owned contexts has the most
+    # different consumer and owned mean image vectors
+    source_brand = brands.loc[brands["consumer_favours"].fillna("") != "", "brand"].tolist()
+    assert len(source_brand) == 1
+    assert disp["vector_distance"].idxmax() == source_brand[0]
