@@ -995,7 +995,11 @@ def summarise(tables: dict[str, pd.DataFrame], *, top: int = 2) -> list[str]:
     if disp is not None and len(disp):
         moved = disp.dropna(subset=["displacement"]).sort_values("displacement", ascending=False)
         if len(moved):
-            line = "brand map, consumer -> owned photos, moves most: " + ", ".join(
+            fit = ""
+            bm = tables.get("brand_map")
+            if bm is not None and (bm["source"] == "owned").any():
+                fit = f" (Procrustes disparity {bm.loc[bm['source'] == 'owned', 'disparity'].iloc[0]:.2f})"
+            line = f"brand map, consumer -> owned photos{fit}, moves most: " + ", ".join(
                 f"{r.brand} ({r.displacement:.2f})" for r in moved.head(top).itertuples()
             )
             far = moved.dropna(subset=["owned_profile_distance"]).sort_values("owned_profile_distance", ascending=False)

@@ -432,7 +432,7 @@ def test_demo_writes_comparison_tables_and_prints_summary(demo_run):
     summary = [line for line in stdout.splitlines() if line.startswith("compare: ")]
     print("\n".join(summary))
     assert any(line.startswith("compare: agreement consumer photos vs survey") for line in summary)
-    assert any(line.startswith("compare: brand map, consumer -> owned photos, moves most") for line in summary)
+    assert any(line.startswith("compare: brand map, consumer -> owned photos (Procrustes disparity") for line in summary)
     assert any(line.startswith("compare: survey vs consumer photos, most different") for line in summary)
 
 
