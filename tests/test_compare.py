@@ -213,6 +213,21 @@ def test_bad_survey_files_are_refused_with_file_and_row(tmp_path, header, row, m
     assert message in str(err.value) and str(path) in str(err.value)
 
 
+def test_a_bad_survey_stops_a_run_before_any_image_is_read(tmp_path, capsys):
+    from explore.cli import main
+    from explore.study import StudyError
+
+    (tmp_path / "images").mkdir()
+    write_survey(tmp_path / "survey.csv", ["Alba,rugged,very"])
+    study = tmp_path / "study.toml"
+    study.write_text('output = "out"\n[images]\nroot = "images"\n[survey]\nfile = "survey.csv"\n', encoding="utf-8")
+    assert issubclass(compare.SurveyError, StudyError)
+    assert main(["--quiet", "run", str(study)]) == 2
+    err = capsys.readouterr().err
+    assert "survey.csv: row 2: column 'score' is 'very'" in err
+    assert not (tmp_path / "out" / "images.csv").exists()  # collect never ran
+
+
 def test_study_without_survey_still_compares_sources():
     tables, notes = compare.compare_study(make_shares(random_profiles(3), random_profiles(4)))
     assert tables["survey"].empty
