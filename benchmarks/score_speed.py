@@ -17,6 +17,7 @@ Run: .venv/bin/python benchmarks/score_speed.py [--images 100000]
 from __future__ import annotations
 
 import argparse
+import os
 import time
 import zlib
 
@@ -91,6 +92,7 @@ def main() -> None:
         joint /= np.linalg.norm(joint, axis=1, keepdims=True)
         encoder = text_encoders.get(dim) or StandInText(dim)
         vec = A.attribute_vectors(attribute, scoring.templates, encoder.encode_texts)
+        text = best_of(lambda: A.attribute_vectors(attribute, scoring.templates, encoder.encode_texts))
         math = best_of(lambda: A.pair_probabilities(joint, vec.positive, vec.negative, 100.0, 0.0) >= 0.5)
         ids = images["image_id"].tolist()
         whole = best_of(lambda: A.score_attributes(ids, joint, joint, [attribute], scoring, encoder))
@@ -100,10 +102,16 @@ def main() -> None:
         shares = time.perf_counter() - start
         verdict = "under 1 s" if whole < 1.0 else "OVER 1 s"
         print(
-            f"  d={dim} ({encoder.id[:40]}): probability math {math * 1000:.1f} ms; "
-            f"score_attributes {whole * 1000:.1f} ms ({verdict}); "
-            f"brand tables with {scoring.bootstrap_samples} bootstrap resamples {shares:.2f} s"
+            f"  d={dim} ({encoder.id[:40]}):\n"
+            f"    encoding the {len(vec.positive_prompts) + len(vec.negative_prompts)} prompts "
+            f"{text * 1000:.0f} ms (fixed, whatever the number of images)\n"
+            f"    probability math on the vectors {math * 1000:.1f} ms\n"
+            f"    score_attributes, all of it (prompts, probabilities, calls, long table) "
+            f"{whole * 1000:.0f} ms: {verdict}\n"
+            f"    brand tables with {scoring.bootstrap_samples} bootstrap resamples {shares:.2f} s"
         )
+    print(f"load average while measuring: {' '.join(f'{x:.1f}' for x in os.getloadavg())} "
+          f"on {os.cpu_count()} CPUs")
 
 
 if __name__ == "__main__":
