@@ -894,8 +894,9 @@ def brand_displacement(
     out = brands.set_index("brand")
     for source in MAP_SOURCES:
         part = brand_map[brand_map["source"] == source].set_index("brand")
-        out[f"{source}_x"] = part["aligned_x"].reindex(out.index)
-        out[f"{source}_y"] = part["aligned_y"].reindex(out.index)
+        # astype(float): an empty map (too few brands) reindexes to object dtype.
+        out[f"{source}_x"] = part["aligned_x"].reindex(out.index).astype(float)
+        out[f"{source}_y"] = part["aligned_y"].reindex(out.index).astype(float)
     out["displacement"] = np.hypot(out["owned_x"] - out["consumer_x"], out["owned_y"] - out["consumer_y"])
     out["survey_displacement"] = np.hypot(out["survey_x"] - out["consumer_x"], out["survey_y"] - out["consumer_y"])
     for name, metric in (("owned_profile_distance", "owned_share"), ("survey_profile_distance", "survey_score")):

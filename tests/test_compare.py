@@ -238,6 +238,19 @@ def test_study_without_survey_still_compares_sources():
     assert any("none in the study" in n for n in notes)
 
 
+def test_two_brands_get_notes_not_a_crash():
+    # Fewer than 3 brands: no brand map can be drawn, so positions and
+    # displacements are missing (NaN), and the notes say why.
+    profiles = random_profiles(5)
+    two = {b: profiles[b] for b in ("Alba", "Brio")}
+    tables, notes = compare.compare_study(make_shares(two, two))
+    assert tables["brand_map"].empty
+    displacement = tables["brand_displacement"]
+    assert sorted(displacement["brand"]) == ["Alba", "Brio"]
+    assert displacement["displacement"].isna().all()
+    assert any("too few brands" in n for n in notes)
+
+
 # --------------------------------------------------------------------------
 # PCA, MDS, Procrustes against references
 
