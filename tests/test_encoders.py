@@ -223,7 +223,7 @@ def test_clip_settings_come_from_the_model(random_clip, clip_encoder):
     # open_clip initialises logit_scale to log(1/0.07) (Radford et al., 2021, sec. 2.5)
     assert clip_encoder.logit_scale == pytest.approx(float(model.logit_scale.detach().exp()))
     assert clip_encoder.logit_scale == pytest.approx(1 / 0.07, rel=1e-5)
-    assert clip_encoder.logit_bias == 0.0  # a CLIP (not SigLIP) model has no logit_bias
+    assert clip_encoder.logit_bias == 0.0  # a shared bias cancels in a two-way softmax (Radford et al. 2021 scoring has none)
     assert clip_encoder.id.startswith("clip-v") and "ViT-B-32" in clip_encoder.id and "file-" in clip_encoder.id
 
 

@@ -431,8 +431,9 @@ class ClipEncoder:
         self.input_size = int(size[0] if isinstance(size, (tuple, list)) else size)
         with torch.no_grad():
             self.logit_scale = float(net.logit_scale.exp())
-            bias = getattr(net, "logit_bias", None)
-            self.logit_bias = float(bias) if bias is not None else 0.0
+        # A model's own logit bias (SigLIP-style models) adds the same amount to
+        # both sides of a prompt pair, so it cancels in the two-way softmax.
+        self.logit_bias = 0.0
         if lookup.source == "file":
             tag = "file-" + _file_digest(lookup.path)[:12]
         elif lookup.source == "dir":
