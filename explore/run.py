@@ -174,7 +174,7 @@ def run_study(
             compare_tables, compare_notes = compare.compare_study(
                 attribute_tables["attribute_shares"],
                 survey=survey,
-                brand_categories={b: study.category_of(b) for b in study.brands},
+                brand_categories=dict(zip(images["brand"], images["category"])),
                 images=images,
                 embeddings=embeddings,
             )
