@@ -61,15 +61,23 @@ def resolve_parameters(n: int, settings: ContextSettings, seed: int = 0) -> dict
     ``None`` in the settings means "scale with n":
 
     - neighbours (UMAP ``n_neighbors``): round(sqrt(n) / 2), kept within
-      [15, 50]. 15 is UMAP's own default; larger neighbourhoods favour the
-      global structure that clustering needs (UMAP documentation, "Using UMAP
-      for Clustering"; the square-root rule is our own rule of thumb);
-    - min_cluster_size (HDBSCAN): 0.5 % of the images, kept within [10, 500],
+      [30, 50]. UMAP's own default is 15; for clustering its documentation
+      ("Using UMAP for Clustering", from memory) uses 30, since larger
+      neighbourhoods keep the global structure clustering needs. The
+      square-root rule is our own rule of thumb;
+    - min_cluster_size (HDBSCAN): 0.5 % of the images, kept within [20, 500],
       so a context is never a handful of near-duplicates and, at 100,000
       images, a context still needs only 500 of them;
     - min_samples (HDBSCAN): min(min_cluster_size, 10). HDBSCAN's own default
       (= min_cluster_size) calls many border images noise; a smaller value
-      keeps more of them in their context.
+      keeps more of them in their context;
+    - cluster_selection_method: the study's ``cluster_selection`` ("leaf" by
+      default: HDBSCAN's "eom" often returns one large parent cluster where
+      several usage situations touch; on the demo scenario it merged
+      breakfast, dinner and gym photos, "leaf" kept them apart).
+
+    These defaults were chosen on the demo scenario (bundled encoder, seeds
+    0, 1, 7) and on random clustered vectors (benchmarks/contexts_scale.py).
 
     Parameters
     ----------
@@ -86,11 +94,11 @@ def resolve_parameters(n: int, settings: ContextSettings, seed: int = 0) -> dict
         raise ValueError(f"contexts: need at least 3 images to find contexts, got {n}")
     neighbours = settings.neighbours
     if neighbours is None:
-        neighbours = int(np.clip(round(np.sqrt(n) / 2), 15, 50))
+        neighbours = int(np.clip(round(np.sqrt(n) / 2), 30, 50))
     neighbours = int(max(2, min(neighbours, n - 1)))
     min_cluster_size = settings.min_cluster_size
     if min_cluster_size is None:
-        min_cluster_size = int(np.clip(round(0.005 * n), 10, 500))
+        min_cluster_size = int(np.clip(round(0.005 * n), 20, 500))
     min_cluster_size = int(max(2, min(min_cluster_size, n)))
     min_samples = settings.min_samples
     if min_samples is None:
@@ -108,7 +116,7 @@ def resolve_parameters(n: int, settings: ContextSettings, seed: int = 0) -> dict
         "fit_sample": int(settings.fit_sample),
         "min_cluster_size": min_cluster_size,
         "min_samples": min_samples,
-        "cluster_selection_method": "eom",
+        "cluster_selection_method": settings.cluster_selection,
     }
 
 

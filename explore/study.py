@@ -75,9 +75,11 @@ class ContextSettings:
     ``None`` for min_cluster_size, min_samples or neighbours means: scale with
     the number of images n (the values used are recorded with the results in
     the ``contexts`` table; see ``explore.contexts.resolve_parameters``):
-    neighbours = round(sqrt(n) / 2) within [15, 50]; min_cluster_size = 0.5 %
-    of n within [10, 500]; min_samples = min(min_cluster_size, 10).
+    neighbours = round(sqrt(n) / 2) within [30, 50]; min_cluster_size = 0.5 %
+    of n within [20, 500]; min_samples = min(min_cluster_size, 10).
 
+    cluster_selection: HDBSCAN cluster selection, "leaf" (default: finer,
+        more homogeneous contexts) or "eom" (HDBSCAN's own default).
     cluster_dimensions: UMAP dimensions HDBSCAN clusters in (default 10).
     fit_sample: above this many images UMAP is fitted on a seeded sample of
         this size and every other image is placed from its nearest sampled
@@ -99,6 +101,7 @@ class ContextSettings:
     min_cluster_size: int | None = None
     min_samples: int | None = None
     neighbours: int | None = None
+    cluster_selection: str = "leaf"
     cluster_dimensions: int = 10
     fit_sample: int = 20000
     vocabulary: Path | None = None
@@ -273,6 +276,10 @@ def check_context_settings(settings: ContextSettings, where: str) -> None:
         value = getattr(settings, key)
         if value is not None and value < low:
             raise StudyError(f"{where}: key 'contexts.{key}' is {value}; it must be at least {low}")
+    if settings.cluster_selection not in ("leaf", "eom"):
+        raise StudyError(
+            f"{where}: key 'contexts.cluster_selection' is '{settings.cluster_selection}'; expected leaf or eom"
+        )
     if not 0.0 < settings.fdr < 1.0:
         raise StudyError(f"{where}: key 'contexts.fdr' must lie strictly between 0 and 1")
     if not 0.0 <= settings.rare_category_share <= 1.0:

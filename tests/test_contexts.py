@@ -245,7 +245,7 @@ def test_vocabulary_default_extend_replace(tmp_path):
 def test_parameters_scale_with_n_and_settings_win():
     s = ContextSettings()
     small, large = ctx.resolve_parameters(300, s), ctx.resolve_parameters(100_000, s)
-    assert (small["neighbours"], small["min_cluster_size"]) == (15, 10)
+    assert (small["neighbours"], small["min_cluster_size"]) == (30, 20)
     assert (large["neighbours"], large["min_cluster_size"]) == (50, 500)
     assert ctx.resolve_parameters(10_000, s)["min_cluster_size"] == 50
     fixed = ctx.resolve_parameters(300, ContextSettings(neighbours=8, min_cluster_size=25, min_samples=3))
@@ -257,7 +257,8 @@ def test_study_refuses_bad_context_settings():
 
     base = {"images": {"root": "."}}
     assert study_from_dict({**base, "contexts": {"fdr": 0.1, "fit_sample": 5000}}).contexts.fdr == 0.1
-    for key, value in (("fdr", 1.5), ("min_cluster_size", 1), ("dominance_ratio", 0.5), ("fit_sample", 10)):
+    for key, value in (("fdr", 1.5), ("min_cluster_size", 1), ("dominance_ratio", 0.5), ("fit_sample", 10),
+                       ("cluster_selection", "biggest")):
         with pytest.raises(StudyError, match=f"contexts.{key}"):
             study_from_dict({**base, "contexts": {key: value}})
 
@@ -496,8 +497,32 @@ def test_demo_contexts_match_the_planted_ones(demo_contexts):
               + "; ".join(f"{r.context} [{r.source}] index {r.index:.0f}: {r.reason}" for r in hits.itertuples()))
         assert len(hits), f"{row.brand}: planted unexpected context {row.unexpected_context} not reported"
 
-    gaps = tables["source_context_gaps"]
-    gaps = gaps[gaps.significant].assign(planted=lambda t: t.context_id.map(planted_of))
+
+def _planted_of(tables, truth_images) -> dict:
+    """Found context id -> the planted context most of its images come from (majority)."""
+    ic = tables["image_contexts"].merge(tables["images"][["image_id", "relpath"]], on="image_id")
+    ic = ic.merge(truth_images[["path", "context"]].rename(columns={"path": "relpath", "context": "planted"}),
+                  on="relpath")
+    kept = ic[ic.context_id != ctx.UNASSIGNED_ID]
+    return kept.groupby("context_id")["planted"].agg(lambda s: s.value_counts().index[0]).to_dict()
+
+
+@pytest.mark.slow
+def test_demo_consumer_vs_owned_difference_is_found(demo_contexts):
+    # The planted consumer-vs-owned differences (truth_brands.csv) must come out
+    # as significant rows of source_context_gaps (Fisher exact + Benjamini-Hochberg,
+    # references checked above), in the planted direction.
+    tables, truth_images, truth_brands = demo_contexts
+    planted_of = _planted_of(tables, truth_images)
+    gaps = tables["source_context_gaps"].assign(planted=lambda t: t.context_id.map(planted_of))
+    print()
+    for brand in sorted(set(truth_brands.loc[(truth_brands.consumer_favours != "")
+                                             | (truth_brands.owned_favours != ""), "brand"])):
+        for r in gaps[gaps.brand == brand].itertuples():
+            print(f"  {brand} context {r.context_id} ({r.planted}): consumer {r.consumer_count}/{r.consumer_n} "
+                  f"vs owned {r.owned_count}/{r.owned_n}, p {r.p_value:.1e}, q {r.q_value:.1e}, "
+                  f"significant {r.significant}")
+    gaps = gaps[gaps.significant]
     for column, direction in (("consumer_favours", "more in consumer photos"),
                               ("owned_favours", "more in owned photos")):
         for row in truth_brands[truth_brands[column] != ""].itertuples():
