@@ -855,20 +855,21 @@ ANCHORS = {
 # (a rugged brand's pictures gain rocks and axes, a sophisticated brand's gain
 # candles and wine glasses). Each also raises the image's planted level.
 ACCENTS = {
-    "ruggedness": [("clip", "tools/axe_peterm_.png", "ground", 0.4), ("clip", "unsorted/zaino_per_montagna.png", "ground", 0.4),
-                   ("clip", "unsorted/tenda_da_campeggio_archi_01.png", "ground", 0.35),
-                   ("clip", "recreation/holiday/hiking_boot_jarno_vasama_.png", "ground", 0.28)],
-    "sophistication": [("drawn", "candle", "ground", 0.42),
-                       ("clip", "food/beverages/alcohol/bottiglia_di_vino_pregi_01.png", "ground", 0.45),
-                       ("clip", "food/beverages/alcohol/wine_glass_christian_h._.png", "ground", 0.38)],
+    "ruggedness": [("clip", "tools/axe_peterm_.png", "ground", 0.38), ("clip", "unsorted/zaino_per_montagna.png", "ground", 0.36),
+                   ("clip", "recreation/holiday/hiking_boot_jarno_vasama_.png", "ground", 0.26)],
+    "sophistication": [("drawn", "candle", "ground", 0.38),
+                       ("clip", "plants/flowers/bouquet_of_flowers_01.png", "ground", 0.36),
+                       ("clip", "food/beverages/alcohol/wine_glass_christian_h._.png", "ground", 0.34)],
 }
 # Share of a brand's images (outside the attribute's own context) that get an accent.
 BRAND_ACCENTS = {
     "Kraggo": ("ruggedness", 0.6),
     "Tundrel": ("ruggedness", 0.6),
     "Orvella": ("sophistication", 0.6),
-    "Velmire": ("sophistication", 0.6),
+    "Velmire": ("sophistication", 0.85),
 }
+
+ACCENT_PROPS = {"Velmire": 2}
 
 # Planted attribute content of each context (1 = the scene itself carries it).
 CONTEXT_LEVELS = {
@@ -947,10 +948,10 @@ def compose(rng, context, brand, accent):
     canvas = Image.fromarray(arr.clip(0, 255).astype(np.uint8)).convert("RGBA")
     pool = PROPS[context]
     picks = rng.choice(len(pool), size=int(rng.integers(3, 6)), replace=False)
-    anchor = ANCHORS[context][rng.integers(0, len(ANCHORS[context]))]
-    entries = [anchor] + [pool[i] for i in picks]
-    if accent:  # two accent props
-        for i in rng.choice(len(ACCENTS[accent]), size=2, replace=False):
+    anchors = [ANCHORS[context][i] for i in rng.choice(len(ANCHORS[context]), size=2, replace=False)]
+    entries = anchors + [pool[i] for i in picks]
+    if accent:  # one accent prop; two for the brand whose photos carry no context of its attribute
+        for i in rng.choice(len(ACCENTS[accent]), size=ACCENT_PROPS.get(brand, 1), replace=False):
             entries.append(ACCENTS[accent][i])
     ground = []
     for entry in entries:
@@ -970,7 +971,7 @@ def compose(rng, context, brand, accent):
         _paste(canvas, img, x, y)
     # the product, in front
     kind = BRANDS[brand]["kind"]
-    ph = H * (rng.uniform(0.24, 0.36) if kind == "can" else rng.uniform(0.32, 0.46))
+    ph = H * (rng.uniform(0.2, 0.3) if kind == "can" else rng.uniform(0.28, 0.4))
     product = draw_product(brand, ph)
     if rng.random() < 0.4:
         product = product.rotate(rng.uniform(-10, 10), resample=Image.BICUBIC, expand=True)
@@ -1035,11 +1036,13 @@ TOP_BRAND = {
     ("drinks", "ruggedness"): "Kraggo", ("apparel", "ruggedness"): "Tundrel",
     ("drinks", "sophistication"): "Orvella", ("apparel", "sophistication"): "Velmire",
     ("drinks", "excitement"): "Fizzwick", ("drinks", "sincerity"): "Orvella",
-    ("apparel", "competence"): "Velmire", ("apparel", "outdoors"): "Tundrel",
+    ("apparel", "competence"): "Velmire",
 }
 #: The brand whose invented survey contradicts its photos: people rate it as the
-#: most rugged and least sophisticated of its category (an old workwear image),
-#: while its photos are the most sophisticated and least rugged.
+#: most rugged, outdoorsy and least sophisticated of its category (an old
+#: workwear image), while its photos are the most sophisticated, office-bound and
+#: least rugged. Wherever its photos rank it first or last, the survey ranks it
+#: at the other end.
 SURVEY_DISAGREES = "Velmire"
 SURVEY_ATTRIBUTES = ("sincerity", "excitement", "competence", "sophistication", "ruggedness", "outdoors")
 
@@ -1067,16 +1070,23 @@ def brand_tables(rows, rng):
             level = {b: float(np.mean([r[attr] for r in frame[b]])) for b in members}
             order = sorted(members, key=lambda b: -level[b])
             score = {b: 1.5 + 4.5 * level[b] for b in members}
-            if SURVEY_DISAGREES in members and attr in ("ruggedness", "sophistication"):
+            flipped = False
+            if SURVEY_DISAGREES in members:
+                # the disagreeing brand is rated at the opposite end wherever its
+                # photos put it first or last in its category
+                rank = order.index(SURVEY_DISAGREES)
                 others = [score[b] for b in members if b != SURVEY_DISAGREES]
-                score[SURVEY_DISAGREES] = max(others) + 0.9 if attr == "ruggedness" else min(others) - 0.9
+                if rank == 0:
+                    score[SURVEY_DISAGREES], flipped = min(others) - 0.9, True
+                elif rank == len(members) - 1:
+                    score[SURVEY_DISAGREES], flipped = max(others) + 0.9, True
             for b in members:
                 top = TOP_BRAND.get((category, attr))
                 attr_rows.append(dict(
                     brand=b, category=category, attribute=attr, planted_level=f"{level[b]:.4f}",
                     planted_rank=order.index(b) + 1, planted_top=str(top == b).lower(),
                     direction_planted=str(top is not None).lower(),
-                    survey_agrees=str(not (b == SURVEY_DISAGREES and attr in ("ruggedness", "sophistication"))).lower(),
+                    survey_agrees=str(not (b == SURVEY_DISAGREES and flipped)).lower(),
                 ))
                 survey_rows.append(dict(
                     brand=b, attribute=attr, category=category,
