@@ -8,7 +8,9 @@ deeper folders are allowed and ignored. A file anywhere else (directly under
 the root, directly under a brand folder, or under a source folder with another
 name) is listed with status ``misplaced``. Operating-system clutter
 (``.DS_Store``, ``Thumbs.db``, ``desktop.ini``, AppleDouble ``._*`` files) is
-not listed; every other file is.
+not listed, nor are documents directly under the root (``.toml``, ``.csv``,
+``.json``, ``.md``, ``.txt``: the study file ``explore init`` writes there, a
+manifest, notes); every other file is.
 
 **Manifest** (a CSV file, UTF-8, header row required). Columns:
 
@@ -94,6 +96,7 @@ COLUMNS = [
     "near_duplicate_of",
 ]
 _CLUTTER = {".ds_store", "thumbs.db", "desktop.ini"}
+_ROOT_DOCUMENTS = {".toml", ".csv", ".json", ".md", ".txt"}
 
 # collect_images applies MAX_PIXELS to every header itself, so PIL's warning
 # (issued at half that size) would only repeat what the table already says.
@@ -313,6 +316,8 @@ def _tree_entries(root: Path, categories: dict[str, str]) -> list[_Entry]:
         for name in sorted(files):
             if name.lower() in _CLUTTER or name.startswith("._"):
                 continue
+            if Path(folder) == root and Path(name).suffix.lower() in _ROOT_DOCUMENTS:
+                continue  # the study file, a manifest or notes kept beside the brands
             full = Path(folder) / name
             rel = full.relative_to(root).as_posix()
             parts = rel.split("/")

@@ -455,3 +455,18 @@ def test_banded_near_duplicate_search_equals_all_pairs():
     for max_bits in (0, 3, 4, 5):
         got = collect.near_duplicate_partners(values, max_bits)
         assert got.tolist() == first_close_earlier(values, max_bits), max_bits
+
+
+def test_documents_beside_the_brand_folders_are_not_images(tmp_path):
+    # `explore init photos/` writes photos/study.toml; a manifest or notes may sit
+    # there too. Those are not listed; a document deeper in the tree still is.
+    root = tmp_path / "photos"
+    save(smooth_photo(1), root / "Alpha/consumer/a.jpg")
+    (root / "study.toml").write_text('name = "x"\n', encoding="utf-8")
+    (root / "notes.txt").write_text("shot in spring\n", encoding="utf-8")
+    (root / "Alpha/consumer/caption.txt").write_text("hello\n", encoding="utf-8")
+    table = collect_images(root, progress=False)
+    assert dict(zip(table["relpath"], table["status"])) == {
+        "Alpha/consumer/a.jpg": "ok",
+        "Alpha/consumer/caption.txt": "not_image",
+    }
