@@ -94,7 +94,7 @@ def run_study(
     survey = compare.read_survey(study.survey.file) if study.survey.file else None
 
     with timer("collect"):
-        images = collect.collect_study_images(study)
+        images = collect.collect_study_images(study, progress=progress)
         summary.images_found = len(images)
         summary.images_used = int((images["status"] == "ok").sum())
         summary.images_skipped = summary.images_found - summary.images_used
