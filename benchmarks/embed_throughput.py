@@ -95,11 +95,17 @@ def bench_family(family: str, table, workdir: Path, batch_size: int, naive_n: in
     paths = table.loc[table["status"] == "ok", "path"].tolist()
     n = len(paths)
 
-    # (c) the model alone at our batch size, on pre-made tensors. The first
-    # pass is a warm-up (the first call at each batch shape sets up kernels,
-    # and bundled embeds its label phrases once); then the best of two passes.
-    size = encoder.input_size
-    batches = [torch.randn(min(batch_size, n - i), 3, size, size) for i in range(0, n, batch_size)]
+    # (c) the model alone at our batch size, on pre-made tensors: the same
+    # photos, decoded and preprocessed beforehand (random tensors can run at
+    # another speed than real pixels). The first pass is a warm-up (the first
+    # call at each batch shape sets up kernels; bundled embeds its label
+    # phrases once).
+    from explore.collect import open_rgb
+
+    size = 2 * encoder.input_size
+    tensors = [encoder.preprocess(open_rgb(p, draft_size=size)) for p in paths]
+    batches = [torch.stack(tensors[i : i + batch_size]) for i in range(0, n, batch_size)]
+    del tensors
     torch.set_num_threads(available_cpus())
 
     def model_pass() -> tuple[float, float]:
