@@ -93,8 +93,13 @@ def run_study(
 
     survey = compare.read_survey(study.survey.file) if study.survey.file else None
 
+    from explore.cache import check_not_busy
+
+    check_not_busy(out / "cache")  # refuse a concurrent run at once, before the slow steps
+
     with timer("collect"):
         images = collect.collect_study_images(study, progress=progress)
+        log(collect.summarise(images))
         summary.images_found = len(images)
         summary.images_used = int((images["status"] == "ok").sum())
         summary.images_skipped = summary.images_found - summary.images_used
