@@ -267,7 +267,7 @@ def make_output_folder(
         )
         tables["survey"] = survey
         tables["agreement"] = pd.DataFrame(
-            [dict(category=cat, attribute=a, metric_a="share", metric_b="survey score", n_brands=2,
+            [dict(category=cat, attribute=a, metric_a="consumer_share", metric_b="survey_score", n_brands=2,
                   concordant_share=0.5, ties=0, kendall_tau=0.0, kendall_p=1.0, spearman_rho=0.0,
                   spearman_p=1.0, pearson_r=0.1, pearson_p=0.9, note="only 2 brands: no test")
              for cat in ("drinks", "outdoor") for a in attributes]
