@@ -151,7 +151,10 @@ def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, deco
     from explore.collect import ImageProblem, open_rgb
 
     cpus = available_cpus()
-    workers = decode_workers or min(2, cpus)
+    # One decode thread keeps ahead of the model on 2 cores (it decodes a phone
+    # photo in ~10 ms; the model needs 15-40 ms per image) and competes less
+    # with torch's threads than two (measured with benchmarks/embed_throughput.py).
+    workers = decode_workers or max(1, min(2, cpus - 1))
     # Decode JPEGs just large enough for the model's own resize step (timm and
     # open_clip resize the short side to at most input_size / 0.875 before
     # cropping), so a phone photo is decoded at 1/4 or 1/8 scale, not in full.
