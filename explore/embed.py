@@ -92,7 +92,7 @@ def embed_table(
     cache_dir : the cache folder (``EmbeddingCache``); held locked during the call.
     batch_size : images per model call and per cache shard.
     progress : show a progress bar (count, rate, time left).
-    decode_workers : decoding threads (default: 2, or 1 on a one-CPU machine).
+    decode_workers : decoding threads (default: 1 on up to 2 CPUs, else 2).
 
     Returns
     -------
