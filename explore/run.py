@@ -58,6 +58,19 @@ def _jsonable(value):
     return value
 
 
+def study_encoder(study: Study, encoder_name: str | None = None, weights: Path | None = None):
+    """The study's encoder, with command-line overrides; returns (encoder, notice)."""
+    from explore.encoders import load_encoder
+
+    settings = study.encoder
+    return load_encoder(
+        encoder_name or settings.name,
+        model=settings.model,
+        pretrained=settings.pretrained,
+        weights=weights or settings.weights,
+    )
+
+
 def run_study(
     study: Study,
     *,
@@ -81,7 +94,6 @@ def run_study(
     RunSummary
     """
     from explore import collect, embed
-    from explore.encoders import load_encoder
 
     out = study.output
     out.mkdir(parents=True, exist_ok=True)
@@ -109,12 +121,7 @@ def run_study(
 
     with timer("embed"):
         settings = study.encoder
-        encoder, notice = load_encoder(
-            encoder_name or settings.name,
-            model=settings.model,
-            pretrained=settings.pretrained,
-            weights=weights or settings.weights,
-        )
+        encoder, notice = study_encoder(study, encoder_name, weights)
         summary.encoder_id = encoder.id
         summary.encoder_notice = notice
         if notice:
@@ -280,7 +287,6 @@ def check_study(
     list of ``attributes.AttributeCheck``, one per labelled attribute.
     """
     from explore import attributes, collect, embed
-    from explore.encoders import load_encoder
     from explore.study import StudyError
 
     labels_path = Path(labels_path)
@@ -300,12 +306,7 @@ def check_study(
     for line in warnings:
         log(line)
     settings = study.encoder
-    encoder, notice = load_encoder(
-        encoder_name or settings.name,
-        model=settings.model,
-        pretrained=settings.pretrained,
-        weights=weights or settings.weights,
-    )
+    encoder, notice = study_encoder(study, encoder_name, weights)
     if notice:
         log(notice)
     embeddings, stats = embed.embed_table(
