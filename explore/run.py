@@ -136,8 +136,8 @@ def run_study(
         summary.images_embedded = stats.embedded
         log(stats.describe())
 
-    # Later stages are added here, in data-flow order (attributes, contexts,
-    # compare, report). Each writes its tables with write_tables(out, ...).
+    # The stages below run in data-flow order; each writes its tables with
+    # write_tables(out, ...) and adds one-line notes for the run summary.
 
     # --- attributes (explore/attributes.py): zero-shot scores, shares, gaps ---
     with timer("attributes"):
