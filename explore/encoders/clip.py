@@ -31,7 +31,7 @@ from urllib.parse import urlparse
 
 import numpy as np
 
-from explore.encoders.base import EncoderUnavailable
+from explore.encoders.base import EncoderUnavailable, file_digest
 from explore.study import DEFAULT_CLIP_MODEL as DEFAULT_MODEL
 from explore.study import DEFAULT_CLIP_PRETRAINED as DEFAULT_PRETRAINED
 
@@ -334,12 +334,6 @@ def unavailable_message(model: str, pretrained: str | None, lookup: WeightsLooku
     return "\n".join(lines)
 
 
-def _file_digest(path: Path) -> str:
-    from explore.encoders.bundled import file_digest
-
-    return file_digest(path)
-
-
 class ClipEncoder:
     """An open_clip model on CPU.
 
@@ -435,12 +429,12 @@ class ClipEncoder:
         # both sides of a prompt pair, so it cancels in the two-way softmax.
         self.logit_bias = 0.0
         if lookup.source == "file":
-            tag = "file-" + _file_digest(lookup.path)[:12]
+            tag = "file-" + file_digest(lookup.path)[:12]
         elif lookup.source == "dir":
             digest = hashlib.sha256()
             for item in sorted(lookup.path.iterdir()):
                 if item.is_file() and item.suffix in (".json", ".safetensors", ".bin", ".pth"):
-                    digest.update(item.name.encode() + _file_digest(item).encode())
+                    digest.update(item.name.encode() + file_digest(item).encode())
             tag = "dir-" + digest.hexdigest()[:12]
         else:
             tag = str(pretrained)
