@@ -27,7 +27,6 @@ from __future__ import annotations
 
 import argparse
 import csv
-import hashlib
 import math
 import shutil
 from datetime import datetime, timedelta

@@ -17,7 +17,6 @@ References used below:
 from __future__ import annotations
 
 import builtins
-import io
 import shutil
 import struct
 import zlib

@@ -9,7 +9,6 @@ first commands a user types work.
 
 from __future__ import annotations
 
-import csv
 import importlib.util
 import io
 from contextlib import redirect_stdout

@@ -15,7 +15,6 @@ chromium``; .ci/run installs it).
 from __future__ import annotations
 
 import io
-import os
 from pathlib import Path
 
 import numpy as np
