@@ -5,28 +5,32 @@ be mapped over shards elsewhere; here it runs on the local CPU:
 
 - only images whose content hash is not yet in the cache are embedded, each
   distinct content once;
-- decoding runs in a small thread pool a few batches ahead of the model
-  (PIL's decoders and resizers, and torch, release the GIL), so the model
-  rarely waits for images;
+- batches run in parallel streams, one per CPU (``embed_batch`` in a thread
+  each; PIL and torch release the GIL). A stream decodes its batch, then runs
+  the model on it with ``cpus // streams`` torch threads, so while one
+  stream decodes the others keep the cores busy, and no core is shared by two
+  busy threads;
 - large JPEGs are decoded at reduced size (libjpeg DCT scaling), just large
   enough for the model's own resize step (input side / 0.875), which saves
   most of the decoding cost;
-- the model runs batched under ``torch.inference_mode()`` with one torch
-  thread per available CPU;
+- the model runs batched under ``torch.inference_mode()``;
 - each finished batch is written to the cache at once, so an interruption
-  loses at most the batch in flight.
+  loses at most the batches in flight (one per stream).
 """
 
 from __future__ import annotations
 
 import os
 import time
-from collections import deque
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from explore.cache import EmbeddingCache
+
+#: Upper bound on the default number of parallel streams (each holds a batch of
+#: decoded images and the model's activations for it).
+MAX_STREAMS = 8
 
 
 class EmbedError(RuntimeError):
@@ -80,7 +84,7 @@ def embed_table(
     cache_dir,
     batch_size: int = 32,
     progress: bool = True,
-    decode_workers: int | None = None,
+    streams: int | None = None,
 ) -> tuple[Embeddings, EmbedStats]:
     """Vectors for every usable image of ``table``, embedding only what the cache lacks.
 
@@ -92,7 +96,9 @@ def embed_table(
     cache_dir : the cache folder (``EmbeddingCache``); held locked during the call.
     batch_size : images per model call and per cache shard.
     progress : show a progress bar (count, rate, time left).
-    decode_workers : decoding threads (default: 1 on up to 2 CPUs, else 2).
+    streams : batches embedded at once, each decoding then encoding in its own
+        thread with ``cpus // streams`` torch threads (default: one per CPU,
+        at most ``MAX_STREAMS``).
 
     Returns
     -------
@@ -105,6 +111,8 @@ def embed_table(
     """
     if batch_size < 1:
         raise ValueError(f"batch_size must be at least 1, got {batch_size}")
+    if streams is not None and streams < 1:
+        raise ValueError(f"streams must be at least 1, got {streams}")
     usable = table[table["status"] == "ok"]
     image_ids = usable["image_id"].astype(str).tolist()
     shas = usable["sha256"].astype(str).tolist()
@@ -125,7 +133,7 @@ def embed_table(
                 path_of.setdefault(sha, path)
             start = time.perf_counter()
             try:
-                _embed_into(cache, [(s, path_of[s]) for s in todo], encoder, batch_size, progress, decode_workers)
+                _embed_into(cache, [(s, path_of[s]) for s in todo], encoder, batch_size, progress, streams)
             finally:
                 stats.embedded = len(todo) - len(cache.missing(todo))
                 stats.seconds = time.perf_counter() - start
@@ -141,54 +149,96 @@ def available_cpus() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, decode_workers) -> None:
-    """Decode ahead in threads, encode batch by batch, write each batch to the cache."""
-    from concurrent.futures import ThreadPoolExecutor
+def default_streams(cpus: int | None = None) -> int:
+    """Batches embedded at once: one per CPU, at most ``MAX_STREAMS``."""
+    return max(1, min(MAX_STREAMS, cpus or available_cpus()))
+
+
+def embed_batch(encoder, items, draft_size: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Decode, preprocess and encode one batch: the pure step of embedding.
+
+    Parameters
+    ----------
+    encoder : an ``explore.encoders.base.Encoder``.
+    items : (sha256, path) pairs; each file must still hash to its sha256.
+    draft_size : JPEGs are decoded at reduced scale, both sides at least this
+        (default: just above ``encoder.input_size / 0.875``).
+
+    Returns
+    -------
+    (cluster, joint) float32 arrays, one checked, L2-normalised row per item.
+    """
+    import torch
+
+    from explore.collect import ImageProblem, open_rgb
+
+    if draft_size is None:
+        draft_size = int(encoder.input_size / 0.875) + 1
+    tensors = []
+    for sha, path in items:
+        try:
+            tensors.append(encoder.preprocess(open_rgb(path, draft_size=draft_size, expect_sha256=sha)))
+        except ImageProblem as problem:
+            raise EmbedError(f"{path}: {problem.reason} (during this run; run again to re-collect)") from None
+    with torch.inference_mode():
+        out = encoder.encode_images(torch.stack(tensors))
+    return _check(out, "cluster", len(items), encoder.id), _check(out, "joint", len(items), encoder.id)
+
+
+def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, streams) -> None:
+    """Run ``embed_batch`` in parallel streams; write each finished batch to the cache.
+
+    A stream decodes its batch, then encodes it with ``cpus // streams`` torch
+    threads. While one stream decodes, the others keep the model busy, and no
+    core is shared by two busy threads. On an error the batches already in
+    flight are still written, then the first error is raised.
+    """
+    from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
 
     import torch
     from tqdm.auto import tqdm
 
-    from explore.collect import ImageProblem, open_rgb
-
     cpus = available_cpus()
-    # One decode thread keeps ahead of the model on 2 cores (it decodes a phone
-    # photo in ~10 ms; the model needs 15-40 ms per image) and competes less
-    # with torch's threads than two (measured with benchmarks/embed_throughput.py).
-    workers = decode_workers or max(1, min(2, cpus - 1))
+    streams = streams or default_streams(cpus)
+    threads = max(1, cpus // streams)
     # Decode JPEGs just large enough for the model's own resize step (timm and
     # open_clip resize the short side to at most input_size / 0.875 before
     # cropping), so a phone photo is decoded at 1/4 or 1/8 scale, not in full.
     draft = int(encoder.input_size / 0.875) + 1
-
-    def load(sha: str, path: str):
-        try:
-            return encoder.preprocess(open_rgb(path, draft_size=draft, expect_sha256=sha))
-        except ImageProblem as problem:
-            raise EmbedError(f"{path}: {problem.reason} (during this run; run again to re-collect)") from None
-
-    batches = [todo[i : i + batch_size] for i in range(0, len(todo), batch_size)]
-    ahead = 2  # batches decoded ahead of the model
+    batches = iter([todo[i : i + batch_size] for i in range(0, len(todo), batch_size)])
     threads_before = torch.get_num_threads()
-    torch.set_num_threads(cpus)
-    pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="explore-decode")
-    pending: deque = deque()
+    torch.set_num_threads(threads)
+    pool = ThreadPoolExecutor(max_workers=streams, thread_name_prefix="explore-embed", initializer=torch.set_num_threads, initargs=(threads,))
+    pending: dict = {}
+    error: BaseException | None = None
+
+    def submit_next() -> None:
+        batch = next(batches, None)
+        if batch is not None:
+            pending[pool.submit(embed_batch, encoder, batch, draft)] = batch
+
     try:
-        with tqdm(total=len(todo), desc="embed", unit="img", disable=not progress) as bar, torch.inference_mode():
-            for batch in batches[:ahead]:
-                pending.append([pool.submit(load, sha, path) for sha, path in batch])
-            for k, batch in enumerate(batches):
-                futures = pending.popleft()
-                if k + ahead < len(batches):
-                    pending.append([pool.submit(load, sha, path) for sha, path in batches[k + ahead]])
-                tensors = [f.result() for f in futures]
-                out = encoder.encode_images(torch.stack(tensors))
-                cluster = _check(out, "cluster", len(batch), encoder.id)
-                joint = _check(out, "joint", len(batch), encoder.id)
-                cache.put([sha for sha, _ in batch], cluster, joint)
-                bar.update(len(batch))
+        with tqdm(total=len(todo), desc="embed", unit="img", disable=not progress) as bar:
+            for _ in range(streams):
+                submit_next()
+            while pending:
+                done, _ = wait(pending, return_when=FIRST_COMPLETED)
+                for future in done:
+                    batch = pending.pop(future)
+                    try:
+                        cluster, joint = future.result()
+                    except Exception as exc:  # keep what the other streams finish, then raise
+                        error = error or exc
+                        continue
+                    cache.put([sha for sha, _ in batch], cluster, joint)
+                    bar.update(len(batch))
+                    if error is None:
+                        submit_next()
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
         torch.set_num_threads(threads_before)
+    if error is not None:
+        raise error
 
 
 def _check(out: dict, key: str, n: int, encoder_id: str) -> np.ndarray:

@@ -66,6 +66,10 @@ class Encoder(Protocol):
     logit_scale: float
     logit_bias: float
 
+    # preprocess and encode_images are called from several threads at once
+    # (embed runs one batch per stream), so they must not change shared state
+    # without a lock.
+
     def preprocess(self, image: "Image.Image") -> "torch.Tensor":
         """One RGB PIL image -> a CHW float tensor ready for batching."""
 

@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import threading
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -156,6 +157,8 @@ def _write_vectors(path: Path, vectors: np.ndarray) -> None:
 # shared by every BundledEncoder with the same settings.
 _MODELS: dict = {}
 _LABEL_EMBEDDINGS: dict = {}
+# encode_images may run in several threads at once; the label embeddings are made once.
+_LABEL_LOCK = threading.Lock()
 
 
 def _load_image_model():
@@ -305,14 +308,15 @@ class BundledEncoder:
         key = hashlib.sha256(
             "\n".join([self._weights_digest, str(BUNDLED_VERSION), *phrases]).encode()
         ).hexdigest()[:16]
-        if key not in _LABEL_EMBEDDINGS:
-            path = label_cache_dir() / f"bundled-label-embeddings-{key}.npy"
-            vectors = _read_vectors(path, (len(phrases), self.text_dim))
-            if vectors is None:
-                vectors = self.encode_texts(phrases)
-                _write_vectors(path, vectors)
-            _LABEL_EMBEDDINGS[key] = vectors
-        return _LABEL_EMBEDDINGS[key]
+        with _LABEL_LOCK:
+            if key not in _LABEL_EMBEDDINGS:
+                path = label_cache_dir() / f"bundled-label-embeddings-{key}.npy"
+                vectors = _read_vectors(path, (len(phrases), self.text_dim))
+                if vectors is None:
+                    vectors = self.encode_texts(phrases)
+                    _write_vectors(path, vectors)
+                _LABEL_EMBEDDINGS[key] = vectors
+            return _LABEL_EMBEDDINGS[key]
 
     def _forward(self, batch: "torch.Tensor") -> tuple[np.ndarray, np.ndarray]:
         import torch
