@@ -101,15 +101,21 @@ def test_bundled_imagenet_head_labels_sample_photos(bundled, bundled_batch):
 def test_bundled_vectors_match_timm(bundled, bundled_batch):
     # Outside reference: timm's own efficientnet_lite0, built headless
     # (num_classes=0 returns the globally pooled features) and with its
-    # classifier, fed the same state dict.
+    # classifier, fed the shipped state dict; the encoder runs a copy with the
+    # batch norms folded into the convolutions, in channels-last memory.
     import timm
 
-    state = {k: v for k, v in bundled.model.state_dict().items()}
+    from explore.encoders.bundled import imagenet_model
+
+    reference = imagenet_model()
+    state = reference.state_dict()
+    assert any(k.endswith("running_var") for k in state)  # the unfolded model
+    assert not any(k.endswith("running_var") for k in bundled.model.state_dict())  # the folded copy
     headless = timm.create_model("efficientnet_lite0", pretrained=False, num_classes=0).eval()
     headless.load_state_dict({k: v for k, v in state.items() if not k.startswith("classifier.")})
     with torch.no_grad():
         pooled = headless(bundled_batch).numpy()
-        logits = bundled.model(bundled_batch)
+        logits = reference(bundled_batch)
     expected = pooled / np.linalg.norm(pooled, axis=1, keepdims=True)
     np.testing.assert_allclose(bundled.encode_images(bundled_batch)["cluster"], expected, atol=1e-5)
     np.testing.assert_allclose(bundled.class_probabilities(bundled_batch), logits.softmax(-1).numpy(), atol=1e-6)
