@@ -172,7 +172,12 @@ def embed_batch(encoder, items, draft_size: int | None = None) -> tuple[np.ndarr
 
     from explore.collect import ImageProblem, open_rgb
 
+    if not items:
+        raise ValueError("embed_batch needs at least one image")
     if draft_size is None:
+        # Just large enough for the model's own resize step (timm and open_clip
+        # resize the short side to at most input_size / 0.875 before cropping),
+        # so a phone photo is decoded at 1/4 or 1/8 scale, not in full.
         draft_size = int(encoder.input_size / 0.875) + 1
     tensors = []
     for sha, path in items:
@@ -201,21 +206,19 @@ def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, stre
     cpus = available_cpus()
     streams = streams or default_streams(cpus)
     threads = max(1, cpus // streams)
-    # Decode JPEGs just large enough for the model's own resize step (timm and
-    # open_clip resize the short side to at most input_size / 0.875 before
-    # cropping), so a phone photo is decoded at 1/4 or 1/8 scale, not in full.
-    draft = int(encoder.input_size / 0.875) + 1
     batches = iter([todo[i : i + batch_size] for i in range(0, len(todo), batch_size)])
     threads_before = torch.get_num_threads()
     torch.set_num_threads(threads)
-    pool = ThreadPoolExecutor(max_workers=streams, thread_name_prefix="explore-embed", initializer=torch.set_num_threads, initargs=(threads,))
+    pool = ThreadPoolExecutor(
+        max_workers=streams, thread_name_prefix="explore-embed", initializer=torch.set_num_threads, initargs=(threads,)
+    )
     pending: dict = {}
     error: BaseException | None = None
 
     def submit_next() -> None:
         batch = next(batches, None)
         if batch is not None:
-            pending[pool.submit(embed_batch, encoder, batch, draft)] = batch
+            pending[pool.submit(embed_batch, encoder, batch)] = batch
 
     try:
         with tqdm(total=len(todo), desc="embed", unit="img", disable=not progress) as bar:
