@@ -13,8 +13,8 @@ For each encoder family it prints images per second for
     once, each on cpus // streams threads);
 
 (a) and (c) alternate and keep the best of two passes each, as does (b),
-since the load from other processes drifts; CPU time per image is printed as well, which
-depends far less on that load;
+since the load from other processes drifts; CPU time per image is printed as
+well, which depends far less on that load;
 
 and the ratios a/b and a/c. Targets: a/c >= 0.8 and a/b >= 2.
 
@@ -61,10 +61,10 @@ def load(family: str, workdir: Path):
 
     (b) is what a newcomer writes from the upstream library's README, with no
     tuning of ours: open_clip's for ``clip``; for ``bundled``, timm's (the same
-    EfficientNet-Lite0 weights in timm's default memory layout, timm's eval
+    EfficientNet-Lite0 weights as timm builds the model, timm's eval
     transform), plus the cheap ConSE step so it yields the same vectors. The
-    second ``bundled`` loop runs our own encoder one image at a time, for
-    comparison.
+    second ``bundled`` loop runs our own encoder (folded batch norms,
+    channels-last) one image at a time, for comparison.
     """
     import torch
 
@@ -104,7 +104,7 @@ def load(family: str, workdir: Path):
             probabilities = timm_model.get_classifier()(pooled).softmax(dim=-1)
         return pooled / pooled.norm(dim=-1, keepdim=True), conse(probabilities.double().numpy(), labels, encoder.top_t)
 
-    def encoder_one(path):  # the same loop through our encoder (channels-last model)
+    def encoder_one(path):  # the same loop through our encoder (folded, channels-last model)
         image = encoder.preprocess(Image.open(path).convert("RGB")).unsqueeze(0)
         with torch.no_grad():
             return encoder.encode_images(image)

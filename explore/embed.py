@@ -94,7 +94,9 @@ def embed_table(
         ``ok`` are embedded.
     encoder : an ``explore.encoders.base.Encoder``.
     cache_dir : the cache folder (``EmbeddingCache``); held locked during the call.
-    batch_size : images per model call and per cache shard.
+    batch_size : images per model call and per cache shard (at most; a job
+        of fewer than ``streams * batch_size`` images is split evenly over the
+        streams).
     progress : show a progress bar (count, rate, time left).
     streams : batches embedded at once, each decoding then encoding in its own
         thread with ``cpus // streams`` torch threads (default: one per CPU,
@@ -205,8 +207,14 @@ def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, stre
 
     cpus = available_cpus()
     streams = streams or default_streams(cpus)
+    # A small job is spread over the streams (smaller batches) rather than
+    # leaving cores idle; with fewer batches than streams, each stream that
+    # runs gets more torch threads.
+    batch_size = max(1, min(batch_size, -(-len(todo) // streams)))
+    batches = [todo[i : i + batch_size] for i in range(0, len(todo), batch_size)]
+    streams = min(streams, len(batches))
     threads = max(1, cpus // streams)
-    batches = iter([todo[i : i + batch_size] for i in range(0, len(todo), batch_size)])
+    batches = iter(batches)
     threads_before = torch.get_num_threads()
     torch.set_num_threads(threads)
     pool = ThreadPoolExecutor(

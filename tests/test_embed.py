@@ -91,7 +91,7 @@ def test_vectors_are_aligned_with_usable_rows(tmp_path):
     (tmp_path / "photos/Alpha/owned/broken.jpg").write_bytes(b"not a jpeg")
     table = collect.collect_images(tmp_path / "photos", progress=False)
     encoder = FakeEncoder()
-    emb, stats = embed_table(table, encoder, tmp_path / "cache", batch_size=4, progress=False)
+    emb, stats = embed_table(table, encoder, tmp_path / "cache", batch_size=4, progress=False, streams=2)
 
     usable = table[table["status"] == "ok"]
     assert isinstance(emb, Embeddings) and emb.encoder_id == "fake-v1"
@@ -216,6 +216,37 @@ def test_streams_encode_batches_at_the_same_time_with_the_same_vectors(tmp_path)
     np.testing.assert_array_equal(two.joint, one.joint)
     with pytest.raises(ValueError, match="streams must be at least 1"):
         embed_table(table, FakeEncoder(), tmp_path / "cache-3", progress=False, streams=0)
+
+
+class ThreadCountingEncoder(MeetingEncoder):
+    """Records the torch thread count each batch is encoded with."""
+
+    def __init__(self, streams: int):
+        super().__init__(streams)
+        self.torch_threads: list[int] = []
+
+    def encode_images(self, batch):
+        import torch
+
+        self.torch_threads.append(torch.get_num_threads())
+        return super().encode_images(batch)
+
+
+def test_a_small_job_is_spread_over_the_streams(tmp_path):
+    from explore.embed import available_cpus
+
+    make_tree(tmp_path / "photos", 5)
+    table = collect.collect_images(tmp_path / "photos", progress=False)
+    # 5 images, room for 32 per batch: two batches that run at once, not one.
+    encoder = ThreadCountingEncoder(streams=2)
+    emb, _ = embed_table(table, encoder, tmp_path / "cache-a", batch_size=32, progress=False, streams=2)
+    assert sorted(encoder.batch_sizes) == [2, 3] and len(emb) == 5
+    assert encoder.torch_threads == [max(1, available_cpus() // 2)] * 2
+    # One image: one stream, which gets every CPU's torch thread.
+    single = table.iloc[:1]
+    encoder = ThreadCountingEncoder(streams=1)
+    embed_table(single, encoder, tmp_path / "cache-b", batch_size=32, progress=False, streams=2)
+    assert encoder.batch_sizes == [1] and encoder.torch_threads == [available_cpus()]
 
 
 class FailingEncoder(FakeEncoder):
