@@ -141,15 +141,13 @@ def bench_family(family: str, table, workdir: Path, batch_size: int, naive_n: in
 
     def model_pass(layout) -> tuple[float, float]:
         n_streams, threads = layout
-        torch.set_num_threads(threads)
 
         def encode(batch):
-            torch.set_num_threads(threads)
             with torch.inference_mode():
                 encoder.encode_images(batch)
 
         start, cpu = time.perf_counter(), time.process_time()
-        with ThreadPoolExecutor(max_workers=n_streams) as pool:
+        with ThreadPoolExecutor(max_workers=n_streams, initializer=torch.set_num_threads, initargs=(threads,)) as pool:
             list(pool.map(encode, batches))
         return n / (time.perf_counter() - start), (time.process_time() - cpu) / n
 

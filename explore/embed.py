@@ -215,8 +215,7 @@ def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, stre
     streams = min(streams, len(batches))
     threads = max(1, cpus // streams)
     batches = iter(batches)
-    threads_before = torch.get_num_threads()
-    torch.set_num_threads(threads)
+    threads_before = torch.get_num_threads()  # the streams' setting is process-wide: restored below
     pool = ThreadPoolExecutor(
         max_workers=streams, thread_name_prefix="explore-embed", initializer=torch.set_num_threads, initargs=(threads,)
     )
