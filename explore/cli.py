@@ -25,7 +25,7 @@ def _add_encoder_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--weights", type=Path, help="local open_clip checkpoint file for --encoder clip")
 
 
-# --- attributes options (explore/attributes.py) ---------------------------------
+# --- attributes options (explore/attributes/) ---------------------------------
 ATTRIBUTE_HELP = (
     "add an attribute for this command only, without editing the study file; repeatable. "
     "Write it on one line as 'NAME: positive; positive ... / negative; negative ...': the name, "

@@ -139,7 +139,7 @@ def run_study(
     # The stages below run in data-flow order; each writes its tables with
     # write_tables(out, ...) and adds one-line notes for the run summary.
 
-    # --- attributes (explore/attributes.py): zero-shot scores, shares, gaps ---
+    # --- attributes (explore/attributes/): zero-shot scores, shares, gaps ---
     with timer("attributes"):
         from explore import attributes
 
@@ -243,7 +243,7 @@ class _StageTimer:
         return _Timer()
 
 
-# --- check (explore/attributes.py): attributes against hand labels -----------
+# --- check (explore/attributes/): attributes against hand labels -----------
 
 #: In the output folder: what ``explore check --save-threshold/--save-probe`` stored,
 #: {attribute name: record}; later runs use it for those attributes.

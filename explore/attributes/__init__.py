@@ -1,0 +1,72 @@
+"""Attributes: prompt pairs -> per-image probabilities -> brand shares with intervals.
+
+One file per concern:
+
+- ``prompts``: attribute definitions, prompts, ensembled text vectors;
+- ``scoring``: per-image probabilities (zero-shot prompt pairs or a saved probe);
+- ``intervals``: Wilson, Newcombe and bootstrap intervals;
+- ``shares``: brand and category shares, consumer-vs-owned gaps, the stage entry
+  :func:`attribute_tables`;
+- ``labels``: reading hand labels;
+- ``check``: checking scores against hand labels (AUC, thresholds, probe).
+
+Everything here is a pure function over numpy arrays and pandas DataFrames;
+reading and writing files is left to ``explore.run`` and ``explore.cli``. The
+names below are the package's public interface.
+"""
+
+from explore.attributes.check import (
+    MIN_LABELS_PER_CLASS,
+    PROBE_MIN_LABELS_PER_CLASS,
+    AttributeCheck,
+    accuracy_at,
+    auc_interval,
+    check_attribute,
+    checks_table,
+    fit_probe,
+    reliability_table,
+    roc_auc,
+    roc_points,
+    saved_record,
+    youden_threshold,
+)
+from explore.attributes.intervals import (
+    Z95,
+    bootstrap_mean_interval,
+    bootstrap_sums,
+    newcombe_interval,
+    wilson_interval,
+)
+from explore.attributes.labels import LABEL_COLUMNS, read_labels
+from explore.attributes.prompts import (
+    AttributeVectors,
+    add_attributes,
+    attribute_vectors,
+    build_prompts,
+    ensemble,
+    parse_attribute_spec,
+    prompts_digest,
+)
+from explore.attributes.scoring import (
+    attribute_bias,
+    neutral_vector,
+    pair_probabilities,
+    platt_common_slope,
+    probe_probabilities,
+    resolve_threshold,
+    score_attributes,
+    usable_check,
+)
+from explore.attributes.shares import SOURCES, attribute_gaps, attribute_shares, attribute_tables
+
+__all__ = [
+    "MIN_LABELS_PER_CLASS", "PROBE_MIN_LABELS_PER_CLASS", "AttributeCheck", "accuracy_at",
+    "auc_interval", "check_attribute", "checks_table", "fit_probe", "reliability_table", "roc_auc",
+    "roc_points", "saved_record", "youden_threshold", "Z95", "bootstrap_mean_interval",
+    "bootstrap_sums", "newcombe_interval", "wilson_interval", "LABEL_COLUMNS", "read_labels",
+    "AttributeVectors", "add_attributes", "attribute_vectors", "build_prompts", "ensemble",
+    "parse_attribute_spec", "prompts_digest", "attribute_bias", "neutral_vector",
+    "pair_probabilities", "platt_common_slope", "probe_probabilities", "resolve_threshold",
+    "score_attributes", "usable_check", "SOURCES", "attribute_gaps", "attribute_shares",
+    "attribute_tables",
+]
