@@ -271,7 +271,7 @@ def brand_metrics(
     attribute_shares: pd.DataFrame,
     survey: pd.DataFrame | None = None,
     *,
-    value: str = "share",
+    value: str = "yes_rate",
 ) -> pd.DataFrame:
     """One row per brand and attribute with the three metrics side by side.
 
@@ -282,7 +282,7 @@ def brand_metrics(
     survey : the joined survey (output of :func:`join_survey`); rows whose
         status is not ``used`` are left out. ``None``: no survey.
     value : which column of ``attribute_shares`` is the photo metric
-        (``share``, the default, or ``mean_probability``).
+        (``yes_rate``, the default: the model's yes-rate; or ``mean_probability``).
 
     Returns
     -------
@@ -1037,7 +1037,7 @@ def compare_study(
     attributes: list[str] | None = None,
     images: pd.DataFrame | None = None,
     embeddings=None,
-    value: str = "share",
+    value: str = "yes_rate",
     vectors: str = "cluster",
 ) -> tuple[dict[str, pd.DataFrame], list[str]]:
     """Run the compare stage: survey join, agreement, brand maps, displacement.
@@ -1052,7 +1052,7 @@ def compare_study(
         ``attribute_shares``); survey attributes outside it are reported.
     images, embeddings : the images table and the ``Embeddings``, for the
         image-vector map (left out when either is ``None``).
-    value : photo metric column of ``attribute_shares`` (``share``).
+    value : photo metric column of ``attribute_shares`` (``yes_rate``).
     vectors : which image vectors build the vector map (``cluster``).
 
     Returns

@@ -182,7 +182,7 @@ def make_output_folder(
             mp = float(g["probability"].mean())
             share_rows.append(
                 dict(level="brand", brand=brand, category=brands[brand], source=source, attribute=attr, n=m,
-                     positives=k, share=k / m, share_low=lo, share_high=hi, mean_probability=mp,
+                     positives=k, yes_rate=k / m, yes_rate_low=lo, yes_rate_high=hi, mean_probability=mp,
                      mean_low=mp - 0.03, mean_high=mp + 0.03, threshold=0.5, encoder_id=ENCODER_ID)
             )
         for (attr, cat, source), g in pd.concat([merged, merged.assign(source="all")]).groupby(
@@ -193,20 +193,21 @@ def make_output_folder(
             mp = float(g["probability"].mean())
             share_rows.append(
                 dict(level="category", brand="", category=cat, source=source, attribute=attr, n=m,
-                     positives=k, share=k / m, share_low=lo, share_high=hi, mean_probability=mp,
+                     positives=k, yes_rate=k / m, yes_rate_low=lo, yes_rate_high=hi, mean_probability=mp,
                      mean_low=mp - 0.03, mean_high=mp + 0.03, threshold=0.5, encoder_id=ENCODER_ID)
             )
         shares = pd.DataFrame(share_rows)
         tables["attribute_shares"] = shares
         gap_rows = []
         for (brand, attr), g in shares[(shares.level == "brand") & (shares.source != "all")].groupby(["brand", "attribute"]):
-            s = dict(zip(g["source"], g["share"]))
+            s = dict(zip(g["source"], g["yes_rate"]))
             if {"consumer", "owned"} <= set(s):
                 gap = s["consumer"] - s["owned"]
                 gap_rows.append(
                     dict(brand=brand, category=brands[brand], attribute=attr, consumer_n=20, owned_n=10,
-                         consumer_share=s["consumer"],
-                         owned_share=s["owned"], gap=gap, gap_low=gap - 0.15, gap_high=gap + 0.15,
+                         consumer_yes_rate=s["consumer"],
+                         owned_yes_rate=s["owned"], yes_rate_gap=gap, yes_rate_gap_low=gap - 0.15,
+                         yes_rate_gap_high=gap + 0.15,
                          significant=abs(gap) > 0.15, threshold=0.5, encoder_id=ENCODER_ID)
                 )
         tables["attribute_gaps"] = pd.DataFrame(gap_rows)

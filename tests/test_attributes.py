@@ -357,15 +357,15 @@ def test_attribute_tables_counts_shares_and_gaps():
     for (brand, source), frame in merged.groupby(["brand", "source"]):
         row = shares[(shares.level == "brand") & (shares.brand == brand) & (shares.source == source)].iloc[0]
         assert row.n == len(frame) and row.positives == frame.positive.sum()
-        assert row.share == pytest.approx(frame.positive.mean())
+        assert row.yes_rate == pytest.approx(frame.positive.mean())
         assert row.mean_probability == pytest.approx(frame.probability.mean(), rel=1e-5)
-        assert row.share_low <= row.share <= row.share_high
+        assert row.yes_rate_low <= row.yes_rate <= row.yes_rate_high
         assert row.mean_low <= row.mean_probability <= row.mean_high
-    # index = 100 x brand share / category share (DESIGN.md vocabulary; common marketing practice).
+    # index = 100 x brand yes-rate / category yes-rate (DESIGN.md vocabulary; common marketing practice).
     a_consumer = shares[(shares.brand == "A") & (shares.source == "consumer")].iloc[0]
     cat_consumer = shares[(shares.level == "category") & (shares.source == "consumer")].iloc[0]
-    assert a_consumer["share_index"] == pytest.approx(100 * a_consumer.share / cat_consumer.share)
-    assert (shares[shares.level == "category"]["share_index"] == 100).all()
+    assert a_consumer["yes_rate_index"] == pytest.approx(100 * a_consumer.yes_rate / cat_consumer.yes_rate)
+    assert (shares[shares.level == "category"]["yes_rate_index"] == 100).all()
     cat_all = shares[(shares.level == "category") & (shares.source == "all")].iloc[0]
     assert cat_all.n == len(images) and cat_all.brand == ""
     assert cat_all.positives == long.positive.sum()
@@ -374,12 +374,12 @@ def test_attribute_tables_counts_shares_and_gaps():
 
     gaps = tables["attribute_gaps"].set_index("brand")
     a = shares[(shares.level == "brand") & (shares.brand == "A")].set_index("source")
-    assert gaps.loc["A", "gap"] == pytest.approx(a.loc["consumer", "share"] - a.loc["owned", "share"])
+    assert gaps.loc["A", "yes_rate_gap"] == pytest.approx(a.loc["consumer", "yes_rate"] - a.loc["owned", "yes_rate"])
     # The planted lean: brand A's consumer photos are more often positive than its own.
-    assert gaps.loc["A", "gap"] > 0.3 and bool(gaps.loc["A", "significant"])
+    assert gaps.loc["A", "yes_rate_gap"] > 0.3 and bool(gaps.loc["A", "significant"])
     # Brand B has no lean: its interval should contain 0.
     assert not bool(gaps.loc["B", "significant"])
-    print(shares[shares.level == "brand"][["brand", "source", "n", "share", "share_low", "share_high"]])
+    print(shares[shares.level == "brand"][["brand", "source", "n", "yes_rate", "yes_rate_low", "yes_rate_high"]])
 
     # A single brand x source cell is a plain percentile bootstrap of its mean probability.
     # Reference: scipy.stats.bootstrap(method="percentile"); other resamples, so to Monte Carlo error.
@@ -406,7 +406,7 @@ def test_gap_row_kept_when_a_source_is_missing():
     scoring = ScoringSettings(templates=["{}"], bootstrap_samples=50)
     tables, _ = A.attribute_tables(images, images.image_id.tolist(), joint, joint, [attr], scoring, enc)
     b = tables["attribute_gaps"].set_index("brand").loc["B"]
-    assert b.owned_n == 0 and np.isnan(b.gap) and not bool(b.significant)
+    assert b.owned_n == 0 and np.isnan(b.yes_rate_gap) and not bool(b.significant)
 
 
 def test_saved_check_threshold_and_probe_are_used_and_encoder_mismatch_ignored():
@@ -722,10 +722,10 @@ def test_demo_planted_attribute_directions_are_recovered(demo_attributes):
     level = planted.set_index(["brand", "attribute"])["planted_level"]
     print()
     for attribute, part in brand_rows.groupby("attribute"):
-        print(f"{attribute}: share [95% Wilson], mean probability [95% bootstrap], planted level")
+        print(f"{attribute}: yes-rate [95% Wilson], mean probability [95% bootstrap], planted level")
         for r in part.sort_values(["category", "brand"]).itertuples():
             lv = level.get((r.brand, attribute), float("nan"))
-            print(f"  {r.category:<8} {r.brand:<10} share {r.share:.2f} [{r.share_low:.2f}, {r.share_high:.2f}]"
+            print(f"  {r.category:<8} {r.brand:<10} yes-rate {r.yes_rate:.2f} [{r.yes_rate_low:.2f}, {r.yes_rate_high:.2f}]"
                   f"  mean p {r.mean_probability:.3f} [{r.mean_low:.3f}, {r.mean_high:.3f}]  planted {lv:.2f}")
     tops = planted[planted.planted_top.astype(str).str.lower() == "true"]
     tops = tops[tops.attribute.isin(set(brand_rows.attribute))]

@@ -37,15 +37,15 @@ def make_shares(consumer: dict, owned: dict | None = None) -> pd.DataFrame:
                     {
                         "level": "brand", "brand": brand, "category": BRANDS.get(brand, "other"),
                         "source": source, "attribute": attribute, "n": 40,
-                        "positives": round(share * 40), "share": share,
-                        "share_low": max(0.0, share - 0.1), "share_high": min(1.0, share + 0.1),
+                        "positives": round(share * 40), "yes_rate": share,
+                        "yes_rate_low": max(0.0, share - 0.1), "yes_rate_high": min(1.0, share + 0.1),
                         "mean_probability": share, "mean_low": share, "mean_high": share,
                         "threshold": 0.5, "encoder_id": "test",
                     }
                 )
     table = pd.DataFrame(rows)
     # category-level rows exist in the real table and must be ignored here
-    cat = table.groupby(["category", "source", "attribute"], as_index=False)["share"].mean()
+    cat = table.groupby(["category", "source", "attribute"], as_index=False)["yes_rate"].mean()
     cat["level"], cat["brand"], cat["n"] = "category", "", 120
     return pd.concat([table, cat], ignore_index=True)
 

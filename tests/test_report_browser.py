@@ -265,7 +265,7 @@ def test_csv_download_equals_the_table_on_disk(opened, synthetic_report):
     got = pd.read_csv(io.BytesIO(Path(download.path()).read_bytes()), encoding="utf-8-sig", keep_default_na=False)
     want = pd.read_parquet(out / "attribute_shares.parquet")
     assert list(got.columns) == list(want.columns)
-    for col in ("n", "positives", "share", "share_low", "share_high"):
+    for col in ("n", "positives", "yes_rate", "yes_rate_low", "yes_rate_high"):
         np.testing.assert_allclose(got[col].to_numpy(float), want[col].to_numpy(float), rtol=1e-12)
     assert got["brand"].tolist() == want["brand"].fillna("").tolist()
     assert opened.outside_requests() == []

@@ -1,11 +1,11 @@
-"""Attributes: prompt pairs -> per-image probabilities -> brand shares with intervals.
+"""Attributes: prompt pairs -> per-image probabilities -> brand yes-rates with intervals.
 
 One file per concern:
 
 - ``prompts``: attribute definitions, prompts, ensembled text vectors;
 - ``scoring``: per-image probabilities (zero-shot prompt pairs or a saved probe);
 - ``intervals``: Wilson, Newcombe and bootstrap intervals;
-- ``shares``: brand and category shares, consumer-vs-owned gaps, the stage entry
+- ``shares``: brand and category yes-rates, consumer-vs-owned gaps, the stage entry
   :func:`attribute_tables`;
 - ``labels``: reading hand labels;
 - ``check``: checking scores against hand labels (AUC, thresholds, probe).

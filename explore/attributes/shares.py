@@ -1,9 +1,11 @@
-"""Brand metrics: shares of positive calls per brand x source x attribute, and gaps.
+"""Brand metrics: the model's yes-rate per brand x source x attribute, and gaps.
 
-Shares of positive calls with Wilson intervals, mean probabilities with seeded
-bootstrap percentile intervals (resampling within each brand x source cell),
-and consumer-vs-owned differences of shares with Newcombe's hybrid score
-interval.
+The yes-rate is the fraction of photos the model calls positive (probability at
+or above the threshold). It is *not* the share of photos showing the attribute:
+it carries the classifier's errors, and its Wilson interval covers sampling
+noise only. Mean probabilities get seeded bootstrap percentile intervals
+(resampling within each brand x source cell), and consumer-vs-owned differences
+of yes-rates Newcombe's hybrid score interval.
 """
 
 from __future__ import annotations
@@ -28,7 +30,7 @@ def attribute_shares(
     bootstrap_samples: int = 1000,
     seed: int = 0,
 ) -> pd.DataFrame:
-    """Shares and mean probabilities per brand x source x attribute and per category.
+    """Yes-rates and mean probabilities per brand x source x attribute and per category.
 
     Parameters
     ----------
@@ -41,15 +43,17 @@ def attribute_shares(
     Returns
     -------
     attribute_shares table: level (brand/category), brand ("" on category rows),
-    category, source (consumer/owned/all), attribute, n, positives, share,
-    share_low, share_high (95 % Wilson), share_index (100 x share / the category's
-    share for the same source and attribute; NaN when that is 0),
+    category, source (consumer/owned/all), attribute, n, positives, yes_rate
+    (positives / n: the model's yes-rate, not a share of photos showing the
+    attribute), yes_rate_low, yes_rate_high (95 % Wilson, sampling only),
+    yes_rate_index (100 x yes_rate / the category's yes-rate for the same
+    source and attribute; NaN when that is 0),
     mean_probability, mean_low, mean_high (95 % percentile bootstrap,
     resampling within each brand x source cell), threshold, encoder_id.
     """
     columns = [
-        "level", "brand", "category", "source", "attribute", "n", "positives", "share",
-        "share_low", "share_high", "mean_probability", "mean_low", "mean_high",
+        "level", "brand", "category", "source", "attribute", "n", "positives", "yes_rate",
+        "yes_rate_low", "yes_rate_high", "mean_probability", "mean_low", "mean_high",
         "threshold", "encoder_id",
     ]
     if image_attributes.empty:
@@ -101,24 +105,24 @@ def attribute_shares(
                  float(threshold[name]), encoder_id[name])
             )
     table = pd.DataFrame(rows, columns=columns)
-    # index = 100 x brand share / category share, same source (common marketing practice).
-    category = table[table["level"] == "category"].set_index(["category", "source", "attribute"])["share"]
+    # index = 100 x brand yes-rate / category yes-rate, same source (common marketing practice).
+    category = table[table["level"] == "category"].set_index(["category", "source", "attribute"])["yes_rate"]
     base = category.reindex(pd.MultiIndex.from_frame(table[["category", "source", "attribute"]])).to_numpy()
     with np.errstate(divide="ignore", invalid="ignore"):
-        table.insert(table.columns.get_loc("share_high") + 1, "share_index", np.where(base > 0, 100 * table["share"] / base, np.nan))
+        table.insert(table.columns.get_loc("yes_rate_high") + 1, "yes_rate_index", np.where(base > 0, 100 * table["yes_rate"] / base, np.nan))
     return table
 
 
 def attribute_gaps(shares: pd.DataFrame) -> pd.DataFrame:
-    """Consumer-minus-owned difference of shares per brand and attribute.
+    """Consumer-minus-owned difference of yes-rates per brand and attribute.
 
     The interval is Newcombe's hybrid score interval (95 %); ``significant`` is
     true when it excludes zero. Brands lacking either source get a row with
     NaN numbers and ``significant`` false, so nothing disappears silently.
     """
     columns = [
-        "brand", "category", "attribute", "consumer_n", "owned_n", "consumer_share",
-        "owned_share", "gap", "gap_low", "gap_high", "significant", "threshold", "encoder_id",
+        "brand", "category", "attribute", "consumer_n", "owned_n", "consumer_yes_rate",
+        "owned_yes_rate", "yes_rate_gap", "yes_rate_gap_low", "yes_rate_gap_high", "significant", "threshold", "encoder_id",
     ]
     brand_rows = shares[shares["level"] == "brand"]
     if brand_rows.empty:
@@ -127,8 +131,8 @@ def attribute_gaps(shares: pd.DataFrame) -> pd.DataFrame:
     base = brand_rows[brand_rows["source"] == "all"][keys + ["threshold", "encoder_id"]]
     table = base
     for source in SOURCES:
-        part = brand_rows[brand_rows["source"] == source][keys + ["n", "positives", "share"]]
-        part = part.rename(columns={c: f"{source}_{c}" for c in ("n", "positives", "share")})
+        part = brand_rows[brand_rows["source"] == source][keys + ["n", "positives", "yes_rate"]]
+        part = part.rename(columns={c: f"{source}_{c}" for c in ("n", "positives", "yes_rate")})
         table = table.merge(part, on=keys, how="left")
     cn = table["consumer_n"].fillna(0).to_numpy()
     on = table["owned_n"].fillna(0).to_numpy()
@@ -142,9 +146,9 @@ def attribute_gaps(shares: pd.DataFrame) -> pd.DataFrame:
         )
     table["consumer_n"] = cn.astype(int)
     table["owned_n"] = on.astype(int)
-    table["gap"] = np.where(ok, table["consumer_share"] - table["owned_share"], np.nan)
-    table["gap_low"] = low
-    table["gap_high"] = high
+    table["yes_rate_gap"] = np.where(ok, table["consumer_yes_rate"] - table["owned_yes_rate"], np.nan)
+    table["yes_rate_gap_low"] = low
+    table["yes_rate_gap_high"] = high
     table["significant"] = ok & ((low > 0) | (high < 0))
     return table[columns].reset_index(drop=True)
 

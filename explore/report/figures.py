@@ -186,11 +186,11 @@ def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], conte
 
 
 # --------------------------------------------------------------------------
-# Attribute shares
+# Attribute yes-rates
 
 
 def attribute_chart(attribute: str, shares: pd.DataFrame, gaps: pd.DataFrame | None, brands_order: list[str], name: str):
-    """Horizontal bars: each brand's share per source with its interval; significant gaps marked.
+    """Horizontal bars: each brand's yes-rate per source with its interval; significant gaps marked.
 
     Parameters
     ----------
@@ -214,11 +214,11 @@ def attribute_chart(attribute: str, shares: pd.DataFrame, gaps: pd.DataFrame | N
     rows["factor"] = list(zip(rows["brand"], rows["source"]))
     rows = rows.set_index("factor").loc[factors].reset_index()
     rows["color"] = [SOURCE_COLOURS.get(s, MUTED) for s in rows["source"]]
-    rows["share_pct"] = (100 * rows["share"]).round(1)
-    rows["interval"] = [f"{100 * lo:.1f} – {100 * hi:.1f} %" for lo, hi in zip(rows["share_low"], rows["share_high"])]
+    rows["share_pct"] = (100 * rows["yes_rate"]).round(1)
+    rows["interval"] = [f"{100 * lo:.1f} – {100 * hi:.1f} %" for lo, hi in zip(rows["yes_rate_low"], rows["yes_rate_high"])]
     source = ColumnDataSource(dict(
-        factor=rows["factor"].tolist(), share=rows["share"].astype(float), low=rows["share_low"].astype(float),
-        high=rows["share_high"].astype(float), color=rows["color"], brand=rows["brand"], source=rows["source"],
+        factor=rows["factor"].tolist(), share=rows["yes_rate"].astype(float), low=rows["yes_rate_low"].astype(float),
+        high=rows["yes_rate_high"].astype(float), color=rows["color"], brand=rows["brand"], source=rows["source"],
         n=rows["n"], positives=rows["positives"], share_pct=rows["share_pct"], interval=rows["interval"],
     ))
     p = figure(
@@ -234,8 +234,8 @@ def attribute_chart(attribute: str, shares: pd.DataFrame, gaps: pd.DataFrame | N
                    line_color=None, fill_alpha=0.85)]
     p.add_layout(Whisker(source=source, base="factor", lower="low", upper="high", dimension="width",
                          line_color=INK, line_width=1.2, upper_head=None, lower_head=None))
-    tips = [("brand", "@brand"), ("source", "@source"), ("share", "@share_pct %"),
-            ("95 % interval", "@interval"), ("positive photos", "@positives of @n")]
+    tips = [("brand", "@brand"), ("source", "@source"), ("model's yes-rate", "@share_pct %"),
+            ("95 % interval", "@interval"), ("photos the model calls positive", "@positives of @n")]
     if "mean_probability" in rows:
         source.data["mean"] = rows["mean_probability"].astype(float)
         source.data["mean_text"] = [f"{v:.2f}" for v in rows["mean_probability"].astype(float)]
@@ -250,11 +250,11 @@ def attribute_chart(attribute: str, shares: pd.DataFrame, gaps: pd.DataFrame | N
                 y=[(str(b), "consumer") for b in sig["brand"]], x=[1.04] * len(sig),
                 brand=sig["brand"].astype(str).tolist(),
                 gap=[f"{100 * g:+.1f} points ({100 * lo:+.1f} to {100 * hi:+.1f})"
-                     for g, lo, hi in zip(sig["gap"], sig["gap_low"], sig["gap_high"])],
+                     for g, lo, hi in zip(sig["yes_rate_gap"], sig["yes_rate_gap_low"], sig["yes_rate_gap_high"])],
             ))
             star = p.scatter("x", "y", source=marks, marker="diamond", size=13, fill_color="#b8432b",
                              line_color="#ffffff")
-            p.add_tools(HoverTool(renderers=[star], tooltips=[("significant gap", "@brand"),
+            p.add_tools(HoverTool(renderers=[star], tooltips=[("significant yes-rate gap", "@brand"),
                                                               ("consumer − owned", "@gap")]))
     _style(p)
     p.xaxis.formatter = _percent_formatter()

@@ -347,7 +347,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
 
     attr_sections = []
     shares = out.get("attribute_shares")
-    if out.has("attribute_shares", "level", "brand", "source", "attribute", "share", "share_low", "share_high"):
+    if out.has("attribute_shares", "level", "brand", "source", "attribute", "yes_rate", "yes_rate_low", "yes_rate_high"):
         shares = shares.assign(brand=shares["brand"].astype(str), attribute=shares["attribute"].astype(str))
         gaps = out.get("attribute_gaps")
         if gaps is not None and "attribute" in gaps:
@@ -369,8 +369,8 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
             sig = []
             if g is not None and "significant" in g:
                 for rec in g[g["significant"].astype(bool)].to_dict("records"):
-                    sig.append({"brand": rec["brand"], "gap": fmt_pct_points(rec.get("gap")),
-                                "low": fmt_pct_points(rec.get("gap_low")), "high": fmt_pct_points(rec.get("gap_high"))})
+                    sig.append({"brand": rec["brand"], "gap": fmt_pct_points(rec.get("yes_rate_gap")),
+                                "low": fmt_pct_points(rec.get("yes_rate_gap_low")), "high": fmt_pct_points(rec.get("yes_rate_gap_high"))})
             attr_sections.append({
                 "name": attr,
                 "chart": name if chart is not None else None,
@@ -381,7 +381,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
                 "threshold": fmt_number(d.get("threshold")) if d else "",
                 "threshold_from": str(d.get("threshold_from", "")) if d else "",
                 "scored_by": str(d.get("scored_by", "")) if d else "",
-                "category_shares": [(str(r["category"]), f"{100 * r['share']:.1f} %") for r in cat_rows.to_dict("records")],
+                "category_shares": [(str(r["category"]), f"{100 * r['yes_rate']:.1f} %") for r in cat_rows.to_dict("records")],
                 "significant": sig,
             })
 
@@ -472,7 +472,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         contexts=contexts_section,
         heatmap_missing=out.missing("brand_contexts", "brand", "context_id", "index", "share"),
         attr_sections=attr_sections,
-        attr_missing=out.missing("attribute_shares", "level", "brand", "source", "attribute", "share", "share_low", "share_high"),
+        attr_missing=out.missing("attribute_shares", "level", "brand", "source", "attribute", "yes_rate", "yes_rate_low", "yes_rate_high"),
         agreement=_agreement(out),
         comparison_plots=comparison_plots,
         compare_missing=out.missing("brand_map", "source", "brand", "pc1", "pc2"),
@@ -712,7 +712,7 @@ def _brand_view_data(out: OutputFolder, brands: list[str], bc, points: pd.DataFr
                     "count": _clean(rec.get("count")),
                     "source": str(rec.get("source", "")) if rec.get("source") is not None else "",
                 })
-    if out.has("attribute_shares", "level", "brand", "source", "attribute", "share"):
+    if out.has("attribute_shares", "level", "brand", "source", "attribute", "yes_rate"):
         sh = out.get("attribute_shares")
         sh = sh[sh["level"] == "brand"]
         gaps = out.get("attribute_gaps")
@@ -725,9 +725,9 @@ def _brand_view_data(out: OutputFolder, brands: list[str], bc, points: pd.DataFr
                 view[b]["attributes"].append({
                     "attribute": str(rec["attribute"]),
                     "source": str(rec["source"]),
-                    "share": _clean(rec.get("share")),
-                    "low": _clean(rec.get("share_low")),
-                    "high": _clean(rec.get("share_high")),
+                    "share": _clean(rec.get("yes_rate")),
+                    "low": _clean(rec.get("yes_rate_low")),
+                    "high": _clean(rec.get("yes_rate_high")),
                     "n": _clean(rec.get("n")),
                     "significantGap": (b, str(rec["attribute"])) in sig,
                 })
@@ -742,7 +742,7 @@ def _brand_map_points(out: OutputFolder) -> list[dict]:
         for src in ("consumer", "owned", "survey"):
             part = bm[bm["source"] == src]
             if len(part):
-                maps.append({"title": f"attribute map ({src} shares)" if src != "survey" else "attribute map (survey)",
+                maps.append({"title": f"attribute map ({src} yes-rates)" if src != "survey" else "attribute map (survey)",
                              "points": [{"brand": str(b), "x": _clean(x), "y": _clean(y)}
                                         for b, x, y in zip(part["brand"], part["pc1"], part["pc2"])]})
                 break
