@@ -23,11 +23,29 @@ column         required  meaning
 ``source``     yes       ``consumer`` or ``owned`` (any case)
 ``category``   no        the brand's category; when empty, the study's
                          ``[brands]`` table decides, else ``all``
-``posted_at``  no        when the image was posted, kept as text
+``posted_at``  no        when the image was posted: ISO 8601 (``2024-05-01``,
+                         ``2024-05-01T14:30:00+02:00``); rows that do not parse
+                         are named in the error
+``poster``     no        id of the account that posted the photo (any text);
+                         photos of one poster are treated as a cluster by the
+                         attribute statistics
 =============  ========  ==========================================================
 
-Any other column is refused, naming the column, so a misspelt ``catgory`` is
-not silently ignored. A path that resolves (following symbolic links) outside
+Any other column is kept as it is and carried into the images table (and so
+into its CSV export), after the standard columns. A column whose name is close
+to a standard one (a misspelt ``catgory``) or that would overwrite a column of
+the images table (``status``, ``sha256`` ...) is refused, naming the column.
+
+**Metadata sidecar** for a folder tree (study key ``images.metadata``): a CSV
+with a ``path`` column (relative to the root, as the tree lists it) and
+``poster``, ``posted_at`` and any extra columns, the same rules as the
+manifest. Brand and source come from the folders, so those columns are refused
+there. A path that is not a file of the tree is refused, naming its line.
+
+**Photos per poster** (``images.max_per_poster``, 0 = no cap): within each
+brand x source, a poster with more usable photos than the cap keeps a seeded
+random sample of that many (seeded from the study seed and the poster); the
+others stay in the table with status ``over_poster_cap``. A path that resolves (following symbolic links) outside
 the declared root is ``outside_root``; one that does not exist is ``missing``;
 a row with an empty path or brand, an unknown source, the wrong number of
 fields, or a path listed before is ``bad_row``.
@@ -51,6 +69,7 @@ import hashlib
 import io
 import os
 import warnings
+import zlib
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -78,7 +97,8 @@ NEAR_DUPLICATE_BITS = 4
 
 SOURCES = ("consumer", "owned")
 MANIFEST_REQUIRED = ("path", "brand", "source")
-MANIFEST_OPTIONAL = ("category", "posted_at")
+MANIFEST_OPTIONAL = ("category", "posted_at", "poster")
+SIDECAR_OPTIONAL = ("posted_at", "poster")
 COLUMNS = [
     "image_id",
     "path",
@@ -87,6 +107,7 @@ COLUMNS = [
     "category",
     "source",
     "posted_at",
+    "poster",
     "sha256",
     "width",
     "height",
@@ -301,8 +322,10 @@ class _Entry:
     category: str = ""
     source: str = ""
     posted_at: str = ""
+    poster: str = ""
     status: str = ""
     reason: str = ""
+    extras: dict | None = None
 
 
 def _image_id(key: str) -> str:
@@ -365,13 +388,7 @@ def _manifest_entries(manifest: Path, root: Path, categories: dict[str, str]) ->
             f"{manifest}: the manifest lacks column(s) {', '.join(missing)}; "
             f"its header is: {', '.join(rows[0])}"
         )
-    allowed = MANIFEST_REQUIRED + MANIFEST_OPTIONAL
-    unknown = [h for h in header if h not in allowed]
-    if unknown:
-        raise CollectError(
-            f"{manifest}: unknown column(s) {', '.join(unknown)}; "
-            f"expected path, brand, source and optionally category, posted_at"
-        )
+    extras = _extra_columns(manifest, header, MANIFEST_REQUIRED + MANIFEST_OPTIONAL)
     doubled = sorted({h for h in header if header.count(h) > 1})
     if doubled:
         raise CollectError(f"{manifest}: column(s) {', '.join(doubled)} appear more than once")
@@ -379,9 +396,11 @@ def _manifest_entries(manifest: Path, root: Path, categories: dict[str, str]) ->
     real_root = root.resolve()
     seen: dict[str, int] = {}
     entries = []
+    line_numbers: list[int] = []  # of each entry, for messages
     for line_no, row in enumerate(rows[1:], start=2):
         if not row or all(not cell.strip() for cell in row):
             continue
+        line_numbers.append(line_no)
         where = f"manifest line {line_no}"
         if len(row) != len(header):
             raw = ",".join(row)
@@ -404,6 +423,8 @@ def _manifest_entries(manifest: Path, root: Path, categories: dict[str, str]) ->
             brand=cells["brand"],
             source=cells["source"].lower(),
             posted_at=cells.get("posted_at", ""),
+            poster=cells.get("poster", ""),
+            extras={h: cells[h] for h in extras},
         )
         entry.category = cells.get("category", "") or categories.get(entry.brand, "all")
         entries.append(entry)
@@ -440,7 +461,123 @@ def _manifest_entries(manifest: Path, root: Path, categories: dict[str, str]) ->
             entry.status, entry.reason = "missing", f"{where}: '{written}' does not exist"
         elif resolved.is_dir():
             entry.status, entry.reason = "bad_row", f"{where}: '{written}' is a folder, not a file"
+    _parse_posted_at(manifest, entries, line_numbers)
     return entries
+
+
+def _extra_columns(path: Path, header: list[str], standard: tuple[str, ...], refused: tuple[str, ...] = ()) -> list[str]:
+    """The extra (kept) columns of a metadata CSV; refuses typos of standard names and clashes."""
+    import difflib
+
+    extras = []
+    for name in header:
+        if name in standard:
+            continue
+        if name in refused:
+            raise CollectError(
+                f"{path}: column '{name}' is not allowed here: the folder tree decides brand and "
+                f"source, and the study's [brands] table the category"
+            )
+        if not name:
+            raise CollectError(f"{path}: a column has an empty name")
+        close = difflib.get_close_matches(name, list(standard) + list(refused), n=1, cutoff=0.8)
+        if close:
+            raise CollectError(
+                f"{path}: unknown column {name} (did you mean '{close[0]}'?); expected "
+                f"{', '.join(standard)} and any extra columns with other names"
+            )
+        if name in COLUMNS:
+            raise CollectError(
+                f"{path}: column '{name}' would overwrite the images table's own column; rename it"
+            )
+        extras.append(name)
+    return extras
+
+
+def _parse_posted_at(path: Path, entries: list[_Entry], lines: list[str]) -> None:
+    """Normalise ``posted_at`` to ISO 8601 text; raise naming the rows that do not parse."""
+    from datetime import date, datetime
+
+    bad = []
+    for entry, line in zip(entries, lines):
+        text = entry.posted_at
+        if not text:
+            continue
+        try:  # a date stays a date; a date and time becomes its ISO 8601 form
+            entry.posted_at = (date if len(text) <= 10 else datetime).fromisoformat(text).isoformat()
+        except ValueError:
+            bad.append(f"line {line} ('{text}')")
+    if bad:
+        shown = ", ".join(bad[:5]) + (f" and {len(bad) - 5} more" if len(bad) > 5 else "")
+        raise CollectError(
+            f"{path}: posted_at is not an ISO 8601 date or time (e.g. 2024-05-01 or "
+            f"2024-05-01T14:30:00+02:00) on {shown}"
+        )
+
+
+def _apply_sidecar(sidecar: Path, root: Path, entries: list[_Entry]) -> list[str]:
+    """Add poster, posted_at and extra columns from a folder study's sidecar CSV; returns the extras."""
+    if not sidecar.is_file():
+        raise FileNotFoundError(f"{sidecar}: metadata file (images.metadata) not found")
+    try:
+        text = sidecar.read_text(encoding="utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise CollectError(f"{sidecar}: the metadata file is not UTF-8 text: {exc}") from None
+    except OSError as exc:
+        raise CollectError(f"{sidecar}: cannot read the metadata file: {exc}") from None
+    rows = list(csv.reader(io.StringIO(text)))
+    if not rows or "path" not in [h.strip().lower() for h in rows[0]]:
+        raise CollectError(f"{sidecar}: the metadata file needs a header row with a 'path' column")
+    header = [h.strip().lower() for h in rows[0]]
+    doubled = sorted({h for h in header if header.count(h) > 1})
+    if doubled:
+        raise CollectError(f"{sidecar}: column(s) {', '.join(doubled)} appear more than once")
+    extras = _extra_columns(sidecar, header, ("path",) + SIDECAR_OPTIONAL, refused=("brand", "source", "category"))
+    by_path = {e.relpath: e for e in entries}
+    seen: dict[str, int] = {}
+    unknown, touched, lines = [], [], []
+    for line_no, row in enumerate(rows[1:], start=2):
+        if not row or all(not cell.strip() for cell in row):
+            continue
+        if len(row) != len(header):
+            raise CollectError(f"{sidecar}: line {line_no} has {len(row)} fields; the header has {len(header)}")
+        cells = {h: v.strip() for h, v in zip(header, row)}
+        rel = Path(cells["path"]).as_posix()
+        if rel in seen:
+            raise CollectError(f"{sidecar}: line {line_no}: '{rel}' is already listed on line {seen[rel]}")
+        seen[rel] = line_no
+        entry = by_path.get(rel)
+        if entry is None:
+            unknown.append(f"line {line_no} ('{rel}')")
+            continue
+        entry.poster = cells.get("poster", "")
+        entry.posted_at = cells.get("posted_at", "")
+        entry.extras = {h: cells[h] for h in extras}
+        touched.append(entry)
+        lines.append(str(line_no))
+    if unknown:
+        shown = ", ".join(unknown[:5]) + (f" and {len(unknown) - 5} more" if len(unknown) > 5 else "")
+        raise CollectError(f"{sidecar}: no such file under the images root {root}: {shown}")
+    _parse_posted_at(sidecar, touched, lines)
+    return extras
+
+
+def _cap_posters(table: pd.DataFrame, cap: int, seed: int) -> None:
+    """Keep at most ``cap`` usable photos per poster within each brand x source (seeded)."""
+    if cap <= 0:
+        return
+    ok = (table["status"] == "ok") & (table["poster"] != "")
+    for key, frame in table[ok].groupby(["brand", "source", "poster"], sort=True):
+        if len(frame) <= cap:
+            continue
+        rng = np.random.default_rng([int(seed) & 0xFFFFFFFF, zlib.crc32(repr(key).encode("utf-8"))])
+        keep = set(rng.choice(frame.index.to_numpy(), size=cap, replace=False).tolist())
+        drop = [i for i in frame.index if i not in keep]
+        table.loc[drop, "status"] = "over_poster_cap"
+        table.loc[drop, "reason"] = (
+            f"poster '{key[2]}' has {len(frame)} usable photos of {key[0]} ({key[1]}); "
+            f"images.max_per_poster = {cap} keeps a seeded sample of {cap}"
+        )
 
 
 # --------------------------------------------------------------------------
@@ -455,6 +592,9 @@ def collect_images(
     max_pixels: int = MAX_PIXELS,
     near_duplicate_bits: int = NEAR_DUPLICATE_BITS,
     workers: int | None = None,
+    metadata: str | Path | None = None,
+    max_per_poster: int = 0,
+    seed: int = 0,
 ) -> pd.DataFrame:
     """Find the images and build the images table (one row per file found).
 
@@ -471,6 +611,11 @@ def collect_images(
     near_duplicate_bits : Hamming distance (of 64 bits) up to which two
         difference hashes count as near-identical.
     workers : threads reading and hashing files (default: the CPUs available).
+    metadata : optional sidecar CSV for a folder tree (path, poster, posted_at,
+        extra columns; see the module docstring).
+    max_per_poster : at most this many usable photos per poster within a
+        brand x source (0: no cap); the rest get status ``over_poster_cap``.
+    seed : seeds the choice of the photos kept under the cap.
 
     Returns
     -------
@@ -484,6 +629,11 @@ def collect_images(
         root = Path(root) if root is not None else manifest.parent
         if not root.is_dir():
             raise CollectError(f"{root}: the images root given for manifest {manifest} is not a folder")
+        if metadata is not None:
+            raise CollectError(
+                f"{metadata}: a metadata sidecar is for a folder tree; with a manifest, put the "
+                f"poster and extra columns in the manifest {manifest}"
+            )
         entries = _manifest_entries(manifest, root.absolute(), categories)
     elif root is not None:
         root = Path(root)
@@ -492,6 +642,8 @@ def collect_images(
         if not root.is_dir():
             raise CollectError(f"{root}: expected a folder ROOT/<brand>/<source>/... of images")
         entries = _tree_entries(root.absolute(), categories)
+        if metadata is not None:
+            _apply_sidecar(Path(metadata), root.absolute(), entries)
     else:
         raise CollectError("collect needs an images root folder or a manifest CSV")
 
@@ -499,6 +651,7 @@ def collect_images(
     results = _read_all(todo, progress, max_pixels, workers)
     hashes: dict[int, int] = {}
     rows = []
+    extra_names: list[str] = []
     by_entry = dict(zip(map(id, todo), results))
     for entry in entries:
         row = {
@@ -509,6 +662,7 @@ def collect_images(
             "category": entry.category,
             "source": entry.source,
             "posted_at": entry.posted_at,
+            "poster": entry.poster,
             "sha256": "",
             "width": 0,
             "height": 0,
@@ -525,13 +679,20 @@ def collect_images(
                 sha, (w, h), dhash = result
                 row.update(sha256=sha, width=w, height=h, status="ok")
                 hashes[len(rows)] = dhash
+        for name, value in (entry.extras or {}).items():
+            row.setdefault(name, value)
+            if name not in extra_names:
+                extra_names.append(name)
         rows.append(row)
 
-    table = pd.DataFrame(rows, columns=COLUMNS)
+    table = pd.DataFrame(rows, columns=COLUMNS + extra_names)
+    for name in extra_names:
+        table[name] = table[name].fillna("").astype(str)
     table["width"] = table["width"].astype("int64")
     table["height"] = table["height"].astype("int64")
     _flag_duplicates(table)
     _flag_near_duplicates(table, hashes, near_duplicate_bits)
+    _cap_posters(table, max_per_poster, seed)
     return table
 
 
@@ -670,6 +831,9 @@ def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
         manifest=study.images.manifest,
         categories=study.brands,
         progress=progress,
+        metadata=study.images.metadata,
+        max_per_poster=study.images.max_per_poster,
+        seed=study.seed,
     )
 
 

@@ -31,11 +31,18 @@ class ImagesSettings:
 
     root: folder tree ``ROOT/<brand>/<source>/...``, or the folder that manifest
         paths are relative to (and may not escape).
-    manifest: optional CSV with columns path, brand, source[, category, posted_at].
+    manifest: optional CSV with columns path, brand, source[, category, posted_at,
+        poster, any extra columns].
+    metadata: optional sidecar CSV for a folder tree: path (relative to root),
+        poster, posted_at and any extra columns.
+    max_per_poster: at most this many usable photos per poster within each
+        brand x source, a seeded sample (0, the default: no cap).
     """
 
     root: Path | None = None
     manifest: Path | None = None
+    metadata: Path | None = None
+    max_per_poster: int = 0
 
 
 @dataclass
@@ -215,6 +222,13 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
     images = _section(raw, "images", ImagesSettings, where, base)
     if images.root is None and images.manifest is None:
         raise StudyError(f"{where}: [images] needs 'root' (a folder) or 'manifest' (a CSV file)")
+    if images.max_per_poster < 0:
+        raise StudyError(f"{where}: key 'images.max_per_poster' must be 0 (no cap) or more")
+    if images.metadata is not None and images.manifest is not None:
+        raise StudyError(
+            f"{where}: keys 'images.metadata' and 'images.manifest' exclude each other; "
+            f"put poster and extra columns in the manifest"
+        )
     if images.manifest is not None and images.root is None:
         images.root = images.manifest.parent
 

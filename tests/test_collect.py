@@ -469,3 +469,73 @@ def test_documents_beside_the_brand_folders_are_not_images(tmp_path):
         "Alpha/consumer/a.jpg": "ok",
         "Alpha/consumer/caption.txt": "not_image",
     }
+
+
+# --------------------------------------------------------------------------
+# Posters and extra columns
+
+
+def test_manifest_keeps_poster_and_extra_columns_and_parses_posted_at(tmp_path):
+    for i in range(3):
+        save(smooth_photo(i + 1), tmp_path / f"p{i}.jpg")
+    manifest = _manifest(
+        tmp_path / "m.csv",
+        [
+            "path,brand,source,poster,posted_at,Likes,campaign",
+            "p0.jpg,Alpha,consumer,@ann,2024-05-01T14:30:00+02:00,12,spring",
+            "p1.jpg,Alpha,consumer,,2024-05-02,,",
+            "p2.jpg,Alpha,owned,alpha_official,,7,",
+        ],
+    )
+    table = collect_images(manifest=manifest, progress=False)
+    assert table["poster"].tolist() == ["@ann", "", "alpha_official"]
+    assert table["posted_at"].tolist() == ["2024-05-01T14:30:00+02:00", "2024-05-02", ""]
+    assert table["likes"].tolist() == ["12", "", "7"] and table["campaign"].tolist() == ["spring", "", ""]
+    assert list(table.columns[-2:]) == ["likes", "campaign"]  # extras after the standard columns
+
+
+def test_bad_posted_at_and_clashing_columns_are_named(tmp_path):
+    save(smooth_photo(1), tmp_path / "a.jpg")
+    bad = _manifest(tmp_path / "d.csv", ["path,brand,source,posted_at", "a.jpg,A,owned,03/04/2024", "a.jpg,A,owned,"])
+    with pytest.raises(CollectError, match=r"d\.csv.*ISO 8601.*line 2 \('03/04/2024'\)"):
+        collect_images(manifest=bad, progress=False)
+    clash = _manifest(tmp_path / "e.csv", ["path,brand,source,status", "a.jpg,A,owned,x"])
+    with pytest.raises(CollectError, match="'status' would overwrite"):
+        collect_images(manifest=clash, progress=False)
+    typo = _manifest(tmp_path / "f.csv", ["path,brand,source,postr", "a.jpg,A,owned,x"])
+    with pytest.raises(CollectError, match="postr.*did you mean 'poster'"):
+        collect_images(manifest=typo, progress=False)
+
+
+def test_folder_sidecar_adds_posters_and_refuses_unknown_paths(tmp_path):
+    root = tmp_path / "photos"
+    save(smooth_photo(1), root / "Alpha/consumer/a.jpg")
+    save(smooth_photo(2), root / "Alpha/consumer/b.jpg")
+    save(smooth_photo(3), root / "Alpha/owned/c.jpg")
+    side = _manifest(tmp_path / "posters.csv", ["path,poster,posted_at,region", "Alpha/consumer/a.jpg,@ann,2024-01-02,north"])
+    table = collect_images(root=root, metadata=side, progress=False)
+    assert table["poster"].tolist() == ["@ann", "", ""]
+    assert table["region"].tolist() == ["north", "", ""] and table["posted_at"].tolist()[0] == "2024-01-02"
+    wrong = _manifest(tmp_path / "w.csv", ["path,poster", "Alpha/consumer/zz.jpg,@bob"])
+    with pytest.raises(CollectError, match=r"w\.csv.*line 2 \('Alpha/consumer/zz.jpg'\)"):
+        collect_images(root=root, metadata=wrong, progress=False)
+    brand = _manifest(tmp_path / "b.csv", ["path,brand", "Alpha/consumer/a.jpg,Beta"])
+    with pytest.raises(CollectError, match="'brand' is not allowed"):
+        collect_images(root=root, metadata=brand, progress=False)
+
+
+def test_photos_per_poster_cap_is_seeded_and_keeps_rows(tmp_path):
+    root = tmp_path / "photos"
+    lines = ["path,poster"]
+    for i in range(6):
+        save(smooth_photo(10 + i), root / f"Alpha/consumer/{i}.jpg")
+        lines.append(f"Alpha/consumer/{i}.jpg,{'@ann' if i < 5 else '@bob'}")
+    side = _manifest(tmp_path / "posters.csv", lines)
+    first = collect_images(root=root, metadata=side, max_per_poster=2, seed=4, progress=False)
+    again = collect_images(root=root, metadata=side, max_per_poster=2, seed=4, progress=False)
+    assert len(first) == 6  # nothing dropped from the table
+    assert (first["status"] == "over_poster_cap").sum() == 3
+    assert first.loc[first["poster"] == "@ann", "status"].eq("ok").sum() == 2
+    assert first.loc[first["poster"] == "@bob", "status"].tolist() == ["ok"]
+    assert first["status"].tolist() == again["status"].tolist()  # seeded
+    assert "max_per_poster = 2" in first.loc[first["status"] == "over_poster_cap", "reason"].iloc[0]
