@@ -837,6 +837,22 @@ def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
     )
 
 
+def poster_note(table: pd.DataFrame) -> str:
+    """How the statistics treat photos: clustered by poster, or assumed independent."""
+    usable = table[table["status"] == "ok"]
+    posters = usable["poster"].fillna("").astype(str) if "poster" in usable else pd.Series([], dtype=str)
+    known = posters[posters != ""]
+    if known.empty:
+        return (
+            "no poster ids: photos are assumed independent (several photos by one poster would "
+            "make intervals too narrow; add a poster column to the manifest or images.metadata)"
+        )
+    return (
+        f"{known.nunique()} posters for {len(known)} of {len(usable)} usable photos: intervals and "
+        f"tests treat each poster's photos as a cluster (photos without a poster count as their own)"
+    )
+
+
 def skipped_files(table: pd.DataFrame) -> pd.DataFrame:
     """Rows whose status is not ``ok`` (duplicates included), in table order."""
     return table[table["status"] != "ok"].reset_index(drop=True)

@@ -118,6 +118,7 @@ def run_study(
         summary.tables += write_tables(
             out, {"images": images, "skipped": collect.skipped_files(images)}
         )
+        summary.notes.append(f"collect: {collect.poster_note(images)}")
 
     with timer("embed"):
         settings = study.encoder
@@ -175,8 +176,21 @@ def run_study(
             )
             summary.tables += write_tables(out, context_tables)
             summary.notes += contexts.describe(context_tables)
+        # Context-adjusted attribute gaps need both stages, so they are joined here
+        # (explore/attributes/context_adjust.py; attribute_gaps is rewritten with them).
+        gaps = attributes.adjust_gaps_for_context(
+            attribute_tables["attribute_gaps"],
+            attribute_tables["image_attributes"],
+            images,
+            context_tables.get("image_contexts"),
+            attribute_tables["attribute_shares"],
+        )
+        attribute_tables["attribute_gaps"] = gaps
+        write_tables(out, {"attribute_gaps": gaps})
+        summary.notes.append(f"attributes: {attributes.describe_gaps(gaps)}")
     else:
         summary.notes.append("contexts: skipped, fewer than 3 usable images")
+        summary.notes.append(f"attributes: {attributes.describe_gaps(attribute_tables['attribute_gaps'])}")
     # --- end contexts ------------------------------------------------------------
 
 

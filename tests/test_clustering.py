@@ -6,7 +6,7 @@ Outside references are named beside each check.
 import numpy as np
 import pytest
 
-from explore.attributes.clustering import cluster_summary, gap_interval, gap_test, yes_rate_interval
+from explore.attributes.clustering import cluster_summary, gap_interval, gap_test, interval_n, yes_rate_interval
 from explore.attributes.intervals import newcombe_interval, wilson_interval
 from explore.attributes.testing import benjamini_hochberg, minimum_detectable_gap, power_warning
 
@@ -80,11 +80,11 @@ def test_without_posters_everything_is_the_independent_method():
     np.testing.assert_allclose(ha, wh, atol=1e-12)
     np.testing.assert_allclose(sa.effective_n, 40)
     assert not sb.known_posters
-    low, high = gap_interval(sa, sb)
+    low, high = gap_interval(sa.rate, sa.interval_n, sb.rate, sb.interval_n)
     nl, nh = newcombe_interval(a.sum(axis=0), 40, b.sum(axis=0), 55)
     np.testing.assert_allclose(low, nl, atol=1e-12)
     np.testing.assert_allclose(high, nh, atol=1e-12)
-    p = gap_test(sa, sb)
+    p = gap_test(sa.rate, sa.interval_n, sb.rate, sb.interval_n)
     for j in range(3):
         table = [[a[:, j].sum(), 40 - a[:, j].sum()], [b[:, j].sum(), 55 - b[:, j].sum()]]
         assert p[j] == pytest.approx(chi2_contingency(table, correction=False)[1], rel=1e-9)
@@ -95,7 +95,8 @@ def test_gap_test_is_two_sided():
     high = np.r_[np.ones(30), np.zeros(30)]
     low = np.r_[np.ones(10), np.zeros(50)]
     s_high, s_low = cluster_summary(high), cluster_summary(low)
-    p_pos, p_neg = gap_test(s_high, s_low)[0], gap_test(s_low, s_high)[0]
+    p_pos = gap_test(s_high.rate, 60, s_low.rate, 60)[0]
+    p_neg = gap_test(s_low.rate, 60, s_high.rate, 60)[0]
     assert p_pos < 0.001 and p_neg == pytest.approx(p_pos)
 
 
@@ -104,6 +105,8 @@ def test_clustering_widens_and_single_poster_is_independent():
     calls, ids = _clustered_sample(rng, 10, 9, 0.5, 0.4)
     s = cluster_summary(calls, ids)
     assert s.design_effect[0] > 1 and s.effective_n[0] < 90 and s.interval_n[0] < s.effective_n[0]
+    # The table-level recomputation gives the same adjusted n.
+    assert interval_n(90, s.effective_n, s.posters)[0] == pytest.approx(s.interval_n[0])
     one = cluster_summary(calls, ["same"] * 90)
     assert one.posters == 1 and one.design_effect[0] == 1.0 and one.known_posters
 

@@ -5,6 +5,10 @@ One file per concern:
 - ``prompts``: attribute definitions, prompts, ensembled text vectors;
 - ``scoring``: per-image probabilities (zero-shot prompt pairs or a saved probe);
 - ``intervals``: Wilson, Newcombe and bootstrap intervals;
+- ``clustering``: poster-aware (design-effect) intervals and gap tests;
+- ``testing``: Benjamini-Hochberg over the gap family, minimum detectable gaps;
+- ``context_adjust``: gaps adjusted for context (Mantel-Haenszel, Kitagawa),
+  called by ``explore.run`` after the contexts stage;
 - ``shares``: brand and category yes-rates, consumer-vs-owned gaps, the stage entry
   :func:`attribute_tables`;
 - ``labels``: reading hand labels;
@@ -57,7 +61,10 @@ from explore.attributes.scoring import (
     score_attributes,
     usable_check,
 )
-from explore.attributes.shares import SOURCES, attribute_gaps, attribute_shares, attribute_tables
+from explore.attributes.clustering import ClusterSummary, cluster_summary, clustering_note, yes_rate_interval
+from explore.attributes.context_adjust import adjust_gaps_for_context, kitagawa, mantel_haenszel
+from explore.attributes.shares import GAP_FDR, SOURCES, attribute_gaps, attribute_shares, attribute_tables, describe_gaps
+from explore.attributes.testing import benjamini_hochberg, minimum_detectable_gap, power_warning
 
 __all__ = [
     "MIN_LABELS_PER_CLASS", "PROBE_MIN_LABELS_PER_CLASS", "AttributeCheck", "accuracy_at",
@@ -68,5 +75,7 @@ __all__ = [
     "parse_attribute_spec", "prompts_digest", "attribute_bias", "neutral_vector",
     "pair_probabilities", "platt_common_slope", "probe_probabilities", "resolve_threshold",
     "score_attributes", "usable_check", "SOURCES", "attribute_gaps", "attribute_shares",
-    "attribute_tables",
+    "attribute_tables", "ClusterSummary", "cluster_summary", "clustering_note", "yes_rate_interval",
+    "adjust_gaps_for_context", "kitagawa", "mantel_haenszel", "GAP_FDR", "describe_gaps",
+    "benjamini_hochberg", "minimum_detectable_gap", "power_warning",
 ]

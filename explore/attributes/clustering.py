@@ -79,8 +79,6 @@ def cluster_summary(values, clusters=None) -> ClusterSummary:
     values : (n,) or (n, k) 0/1 calls.
     clusters : optional (n,) poster ids ("" or None = unknown, its own cluster).
     """
-    from scipy.stats import t as student_t
-
     v = np.asarray(values, dtype=np.float64)
     if v.ndim == 1:
         v = v[:, None]
@@ -104,11 +102,7 @@ def cluster_summary(values, clusters=None) -> ClusterSummary:
         with np.errstate(divide="ignore", invalid="ignore"):
             deff = np.where(inner, np.maximum(v_cluster / v_srs, 1.0), 1.0)
     effective = n / deff
-    if posters >= 2 and posters < n:
-        ratio = (student_t.ppf(0.975, n - 1) / student_t.ppf(0.975, posters - 1)) ** 2
-    else:
-        ratio = 1.0
-    return ClusterSummary(n, posters, known, rate, deff, effective, effective * ratio)
+    return ClusterSummary(n, posters, known, rate, deff, effective, interval_n(n, effective, posters))
 
 
 def clustering_note(summary: ClusterSummary) -> str:
@@ -135,10 +129,27 @@ def yes_rate_interval(values, clusters=None, z: float = Z95):
     return low, high, s
 
 
-def gap_interval(s1: ClusterSummary, s2: ClusterSummary, z: float = Z95):
+def interval_n(n, effective_n, posters) -> np.ndarray:
+    """Korn-Graubard (1998) df-adjusted effective n from a table's n, effective_n, posters.
+
+    ``effective_n * (t(n-1) / t(posters-1))^2`` at 0.975, unchanged when there
+    are fewer than two posters or every photo has its own.
+    """
+    from scipy.stats import t as student_t
+
+    n = np.asarray(n, dtype=np.float64)
+    e = np.asarray(effective_n, dtype=np.float64)
+    c = np.asarray(posters, dtype=np.float64)
+    use = (c >= 2) & (c < n)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = (student_t.ppf(0.975, np.maximum(n - 1, 1)) / student_t.ppf(0.975, np.maximum(c - 1, 1))) ** 2
+    return np.where(use, e * ratio, e)
+
+
+def gap_interval(rate1, n1, rate2, n2, z: float = Z95):
     """Newcombe (1998, method 10) interval of rate1 - rate2 on adjusted effective n's."""
-    p1, p2 = s1.rate, s2.rate
-    n1, n2 = s1.interval_n, s2.interval_n
+    p1, p2 = np.asarray(rate1, dtype=np.float64), np.asarray(rate2, dtype=np.float64)
+    n1, n2 = np.asarray(n1, dtype=np.float64), np.asarray(n2, dtype=np.float64)
     l1, u1 = wilson_interval(p1 * n1, n1, z)
     l2, u2 = wilson_interval(p2 * n2, n2, z)
     l1, u1 = np.where(p1 == 0, 0.0, l1), np.where(p1 == 1, 1.0, u1)
@@ -149,7 +160,7 @@ def gap_interval(s1: ClusterSummary, s2: ClusterSummary, z: float = Z95):
     return low, high
 
 
-def gap_test(s1: ClusterSummary, s2: ClusterSummary) -> np.ndarray:
+def gap_test(rate1, n1, rate2, n2) -> np.ndarray:
     """Two-sided p-value of rate1 == rate2: pooled two-proportion z-test on adjusted n's.
 
     With independent photos this is Pearson's chi-square test of the 2 x 2
@@ -157,11 +168,12 @@ def gap_test(s1: ClusterSummary, s2: ClusterSummary) -> np.ndarray:
     """
     from scipy.stats import norm
 
-    n1, n2 = s1.interval_n, s2.interval_n
-    pooled = (s1.rate * n1 + s2.rate * n2) / (n1 + n2)
+    p1, p2 = np.asarray(rate1, dtype=np.float64), np.asarray(rate2, dtype=np.float64)
+    n1, n2 = np.asarray(n1, dtype=np.float64), np.asarray(n2, dtype=np.float64)
+    pooled = (p1 * n1 + p2 * n2) / (n1 + n2)
     se = np.sqrt(pooled * (1 - pooled) * (1 / n1 + 1 / n2))
     with np.errstate(divide="ignore", invalid="ignore"):
-        zstat = (s1.rate - s2.rate) / se
+        zstat = (p1 - p2) / se
     p = 2 * norm.sf(np.abs(zstat))
     # Both samples all-yes or all-no: no evidence of a difference.
     return np.where(se > 0, p, 1.0)

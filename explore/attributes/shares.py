@@ -15,11 +15,16 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from explore.attributes.intervals import _group_rng, _percentiles, bootstrap_sums, newcombe_interval, wilson_interval
+from explore.attributes.clustering import clustering_note, yes_rate_interval, gap_interval, gap_test, interval_n
+from explore.attributes.intervals import _group_rng, _percentiles, bootstrap_sums
+from explore.attributes.testing import benjamini_hochberg, minimum_detectable_gap, power_warning
 from explore.attributes.scoring import score_attributes
 from explore.study import Attribute, ScoringSettings
 
 SOURCES = ("consumer", "owned")
+
+#: False-discovery level for the attribute-gap family (Benjamini-Hochberg).
+GAP_FDR = 0.05
 
 
 def attribute_shares(
@@ -35,7 +40,8 @@ def attribute_shares(
     Parameters
     ----------
     image_attributes : long table from :func:`score_attributes`.
-    images : the images table (image_id, brand, category, source).
+    images : the images table (image_id, brand, category, source; optional
+        ``poster``: photos of one poster are a cluster, "" = unknown).
     definitions : attribute_definitions (threshold, encoder_id per attribute).
     bootstrap_samples : resamples for the mean-probability interval.
     seed : the study seed.
@@ -43,25 +49,34 @@ def attribute_shares(
     Returns
     -------
     attribute_shares table: level (brand/category), brand ("" on category rows),
-    category, source (consumer/owned/all), attribute, n, positives, yes_rate
-    (positives / n: the model's yes-rate, not a share of photos showing the
-    attribute), yes_rate_low, yes_rate_high (95 % Wilson, sampling only),
+    category, source (consumer/owned/all), attribute, n, effective_n (n /
+    design effect), positives, yes_rate (positives / n: the model's yes-rate,
+    not a share of photos showing the attribute), yes_rate_low, yes_rate_high
+    (95 %, sampling only: Wilson on the Korn-Graubard adjusted effective n,
+    see :mod:`explore.attributes.clustering`; plain Wilson without posters),
     yes_rate_index (100 x yes_rate / the category's yes-rate for the same
     source and attribute; NaN when that is 0),
     mean_probability, mean_low, mean_high (95 % percentile bootstrap,
-    resampling within each brand x source cell), threshold, encoder_id.
+    resampling within each brand x source cell), posters (distinct posters,
+    an unknown poster counting one per photo), design_effect, clustering
+    (how photos were treated), threshold, encoder_id.
     """
     columns = [
-        "level", "brand", "category", "source", "attribute", "n", "positives", "yes_rate",
+        "level", "brand", "category", "source", "attribute", "n", "effective_n", "positives", "yes_rate",
         "yes_rate_low", "yes_rate_high", "mean_probability", "mean_low", "mean_high",
-        "threshold", "encoder_id",
+        "posters", "design_effect", "clustering", "threshold", "encoder_id",
     ]
     if image_attributes.empty:
         return pd.DataFrame(columns=columns)
     names = list(definitions["attribute"])
     prob = image_attributes.pivot(index="image_id", columns="attribute", values="probability")[names]
     pos = image_attributes.pivot(index="image_id", columns="attribute", values="positive")[names]
-    meta = images.set_index("image_id").loc[prob.index, ["brand", "category", "source"]].astype(str)
+    indexed = images.set_index("image_id")
+    meta = indexed.loc[prob.index, ["brand", "category", "source"]].astype(str)
+    if "poster" in indexed.columns:
+        posters = indexed.loc[prob.index, "poster"].fillna("").astype(str).to_numpy()
+    else:
+        posters = np.full(len(prob.index), "", dtype=object)
     prob_v = prob.to_numpy(np.float64)
     pos_v = pos.to_numpy(bool)
 
@@ -92,7 +107,8 @@ def attribute_shares(
         index = np.concatenate([cells[k][0] for k in keys])
         n = len(index)
         positives = pos_v[index].sum(axis=0)
-        low, high = wilson_interval(positives, n)
+        low, high, design = yes_rate_interval(pos_v[index], posters[index])
+        note = clustering_note(design)
         means = prob_v[index].mean(axis=0)
         if bootstrap_samples > 0:
             mean_low, mean_high = _percentiles(sum(cells[k][1] for k in keys) / n)
@@ -100,8 +116,9 @@ def attribute_shares(
             mean_low = mean_high = np.full(len(names), np.nan)
         for j, name in enumerate(names):
             rows.append(
-                (level, brand, category, source, name, n, int(positives[j]), positives[j] / n,
-                 low[j], high[j], means[j], mean_low[j], mean_high[j],
+                (level, brand, category, source, name, n, float(design.effective_n[j]), int(positives[j]),
+                 positives[j] / n, low[j], high[j], means[j], mean_low[j], mean_high[j],
+                 design.posters, float(design.design_effect[j]), note,
                  float(threshold[name]), encoder_id[name])
             )
     table = pd.DataFrame(rows, columns=columns)
@@ -113,16 +130,26 @@ def attribute_shares(
     return table
 
 
-def attribute_gaps(shares: pd.DataFrame) -> pd.DataFrame:
+def attribute_gaps(shares: pd.DataFrame, fdr: float = GAP_FDR) -> pd.DataFrame:
     """Consumer-minus-owned difference of yes-rates per brand and attribute.
 
-    The interval is Newcombe's hybrid score interval (95 %); ``significant`` is
-    true when it excludes zero. Brands lacking either source get a row with
-    NaN numbers and ``significant`` false, so nothing disappears silently.
+    Interval: Newcombe's hybrid score interval (95 %) on the poster-aware
+    (Korn-Graubard adjusted) effective n's; p_value: two-sided pooled z-test
+    on the same n's (Pearson's chi-square without posters); q_value:
+    Benjamini-Hochberg over the family of every brand x attribute gap with
+    both sources (named in ``family``); ``significant`` when q_value <= fdr.
+    The minimum detectable gap (80 % power, 5 % two-sided) is given for the
+    photo counts and for the effective n's, with a plain warning when the
+    effective n's cannot detect a 10-point gap. Brands lacking either source
+    get a row with NaN numbers and ``significant`` false, so nothing
+    disappears silently.
     """
     columns = [
-        "brand", "category", "attribute", "consumer_n", "owned_n", "consumer_yes_rate",
-        "owned_yes_rate", "yes_rate_gap", "yes_rate_gap_low", "yes_rate_gap_high", "significant", "threshold", "encoder_id",
+        "brand", "category", "attribute", "consumer_n", "consumer_effective_n", "owned_n",
+        "owned_effective_n", "consumer_yes_rate", "owned_yes_rate", "yes_rate_gap",
+        "yes_rate_gap_low", "yes_rate_gap_high", "p_value", "q_value", "family", "significant",
+        "min_detectable_gap", "min_detectable_gap_effective", "power_warning", "clustering",
+        "threshold", "encoder_id",
     ]
     brand_rows = shares[shares["level"] == "brand"]
     if brand_rows.empty:
@@ -130,27 +157,69 @@ def attribute_gaps(shares: pd.DataFrame) -> pd.DataFrame:
     keys = ["brand", "category", "attribute"]
     base = brand_rows[brand_rows["source"] == "all"][keys + ["threshold", "encoder_id"]]
     table = base
+    carried = ("n", "effective_n", "posters", "positives", "yes_rate", "clustering")
     for source in SOURCES:
-        part = brand_rows[brand_rows["source"] == source][keys + ["n", "positives", "yes_rate"]]
-        part = part.rename(columns={c: f"{source}_{c}" for c in ("n", "positives", "yes_rate")})
+        part = brand_rows[brand_rows["source"] == source][keys + [c for c in carried if c in brand_rows]]
+        part = part.rename(columns={c: f"{source}_{c}" for c in carried})
         table = table.merge(part, on=keys, how="left")
-    cn = table["consumer_n"].fillna(0).to_numpy()
-    on = table["owned_n"].fillna(0).to_numpy()
+    cn = table["consumer_n"].fillna(0).to_numpy(np.float64)
+    on = table["owned_n"].fillna(0).to_numpy(np.float64)
     ok = (cn > 0) & (on > 0)
-    low = np.full(len(table), np.nan)
-    high = np.full(len(table), np.nan)
+    ce = table.get("consumer_effective_n", table["consumer_n"]).to_numpy(np.float64)
+    oe = table.get("owned_effective_n", table["owned_n"]).to_numpy(np.float64)
+    cp = table.get("consumer_posters", table["consumer_n"]).to_numpy(np.float64)
+    op = table.get("owned_posters", table["owned_n"]).to_numpy(np.float64)
+    c_adj, o_adj = interval_n(cn, ce, cp), interval_n(on, oe, op)
+    cr = table["consumer_yes_rate"].to_numpy(np.float64)
+    orate = table["owned_yes_rate"].to_numpy(np.float64)
+    nan = np.full(len(table), np.nan)
+    low, high, p = nan.copy(), nan.copy(), nan.copy()
     if ok.any():
-        low[ok], high[ok] = newcombe_interval(
-            table["consumer_positives"].to_numpy()[ok], cn[ok],
-            table["owned_positives"].to_numpy()[ok], on[ok],
-        )
+        low[ok], high[ok] = gap_interval(cr[ok], c_adj[ok], orate[ok], o_adj[ok])
+        p[ok] = gap_test(cr[ok], c_adj[ok], orate[ok], o_adj[ok])
+    q = benjamini_hochberg(p)
+    pooled = np.where(ok, (cr * cn + orate * on) / np.where(ok, cn + on, 1), np.nan)
     table["consumer_n"] = cn.astype(int)
     table["owned_n"] = on.astype(int)
-    table["yes_rate_gap"] = np.where(ok, table["consumer_yes_rate"] - table["owned_yes_rate"], np.nan)
+    table["consumer_effective_n"] = np.where(ok, ce, np.nan)
+    table["owned_effective_n"] = np.where(ok, oe, np.nan)
+    table["yes_rate_gap"] = np.where(ok, cr - orate, np.nan)
     table["yes_rate_gap_low"] = low
     table["yes_rate_gap_high"] = high
-    table["significant"] = ok & ((low > 0) | (high < 0))
+    table["p_value"] = p
+    table["q_value"] = q
+    tested = int(ok.sum())
+    table["family"] = np.where(
+        ok, f"attribute gaps: every brand x attribute with both sources ({tested} tests), "
+        f"Benjamini-Hochberg at {fdr:g}", "not tested (a source is missing)",
+    )
+    table["significant"] = ok & (q <= fdr)
+    table["min_detectable_gap"] = np.where(ok, minimum_detectable_gap(cn, on, pooled), np.nan)
+    effective_gap = np.where(ok, minimum_detectable_gap(c_adj, o_adj, pooled), np.nan)
+    table["min_detectable_gap_effective"] = effective_gap
+    table["power_warning"] = np.where(ok, power_warning(effective_gap), "")
+    notes = [
+        f"consumer {c}; owned {o}" if isinstance(c, str) and isinstance(o, str) else ""
+        for c, o in zip(table.get("consumer_clustering", [""] * len(table)), table.get("owned_clustering", [""] * len(table)))
+    ]
+    table["clustering"] = notes
     return table[columns].reset_index(drop=True)
+
+
+def describe_gaps(gaps: pd.DataFrame) -> str:
+    """One run-note line: how many gaps were tested and flagged, after which corrections."""
+    tested = int(gaps["p_value"].notna().sum()) if "p_value" in gaps else 0
+    if tested == 0:
+        return "no consumer-vs-owned gaps tested (no brand has both sources)"
+    raw = int(gaps.get("significant_before_context", gaps["significant"]).astype(bool).sum())
+    text = (f"{raw} of {tested} consumer-vs-owned yes-rate gaps significant after "
+            f"Benjamini-Hochberg over all brand x attribute gaps")
+    if "context_q_value" in gaps and gaps["context_q_value"].notna().any():
+        text += f"; {int(gaps['significant'].astype(bool).sum())} of them also after adjusting for context (Mantel-Haenszel)"
+    weak = int((gaps.get("power_warning", pd.Series(dtype=str)).fillna("") != "").sum())
+    if weak:
+        text += f"; {weak} of {tested} cells too small to detect a 10-point gap at 80 % power"
+    return text
 
 
 def attribute_tables(
