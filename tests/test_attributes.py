@@ -632,6 +632,13 @@ def test_check_command_reports_saves_and_reuses(labelled_tree, capsys):
     # so ConSE + the prompt pair must separate them far better than chance (0.5).
     assert row.auc > 0.9 and bool(row.better_than_chance)
     assert row.probe_auc > 0.9  # 24 per class: the probe was fitted
+    # Youden (1950): J = max over thresholds of TPR - FPR. With AUC > 0.9 the best
+    # threshold separates well (J well above 0; the worst threshold has J <= 0), and
+    # with balanced classes accuracy = (TPR + 1 - FPR) / 2, so at the J-optimal
+    # threshold it is (1 + J) / 2 and at least the accuracy at any other threshold.
+    assert row.youden_j > 0.6
+    assert row.best_accuracy == pytest.approx((1 + row.youden_j) / 2)
+    assert row.best_accuracy >= row.accuracy
     assert "drink" not in set(summary.attribute)  # no labels for the ad-hoc attribute: not checked
     saved = json.loads((labelled_tree / "out" / "attribute_checks.json").read_text())
     assert saved["animal"]["encoder_id"].startswith("bundled") and len(saved["animal"]["probe"]["coef"]) == 1280
