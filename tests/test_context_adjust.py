@@ -127,3 +127,28 @@ def test_adjustment_drops_a_context_mix_artefact_and_keeps_a_real_gap():
     for _, row in adjusted.iterrows():
         assert row["context_mix_part"] + row["within_context_part"] == pytest.approx(row["yes_rate_gap"])
     assert set(adjusted["contexts_used"]) == {2}
+
+
+def test_demo_flags_only_gaps_surviving_bh_and_context_adjustment(demo_run):
+    # End-to-end on the demo (an example, not a calibration): the flag is the
+    # conjunction the report promises, the decomposition adds up, and the run
+    # notes and report say that photos are assumed independent (no poster ids).
+    import json
+
+    from statsmodels.stats.multitest import multipletests
+
+    gaps = pd.read_parquet(demo_run / "attribute_gaps.parquet")
+    tested = gaps["p_value"].notna()
+    assert tested.sum() == 36 and gaps["family"].str.contains("36 tests").all()
+    # Reference: statsmodels multipletests(fdr_bh) over the same family.
+    np.testing.assert_allclose(gaps.loc[tested, "q_value"], multipletests(gaps.loc[tested, "p_value"], method="fdr_bh")[1])
+    expected = (gaps["q_value"] <= 0.05) & (gaps["context_q_value"] <= 0.05) & (
+        np.sign(gaps["context_adjusted_gap"]) == np.sign(gaps["yes_rate_gap"]))
+    assert (gaps["significant"] == expected).all()
+    assert (gaps["significant_before_context"] == (gaps["q_value"] <= 0.05)).all()
+    np.testing.assert_allclose(gaps["context_mix_part"] + gaps["within_context_part"], gaps["yes_rate_gap"], atol=1e-12)
+    assert (gaps["consumer_effective_n"] == gaps["consumer_n"]).all()  # no posters: effective n = n
+    notes = json.loads((demo_run / "run.json").read_text())["notes"]
+    assert any("photos are assumed independent" in n for n in notes)
+    report = (demo_run / "report.html").read_text(encoding="utf-8")
+    assert "photos are assumed independent" in report and "Benjamini-Hochberg over the family" in report

@@ -346,6 +346,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         add(figures.context_heatmap(bc_all, [b for b in brands if b in set(bc_all["brand"])] or sorted(set(bc_all["brand"])), order))
 
     attr_sections = []
+    gap_family = ""
     shares = out.get("attribute_shares")
     if out.has("attribute_shares", "level", "brand", "source", "attribute", "yes_rate", "yes_rate_low", "yes_rate_high"):
         shares = shares.assign(brand=shares["brand"].astype(str), attribute=shares["attribute"].astype(str))
@@ -357,6 +358,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         if defs is not None and "attribute" in defs:
             for rec in defs.to_dict("records"):
                 defs_by[str(rec["attribute"])] = rec
+        gap_family = _gap_family(gaps)
         attr_names = attributes or list(dict.fromkeys(shares["attribute"]))
         for k, attr in enumerate(attr_names):
             rows = shares[(shares["level"] == "brand") & (shares["attribute"] == attr)]
@@ -472,6 +474,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         contexts=contexts_section,
         heatmap_missing=out.missing("brand_contexts", "brand", "context_id", "index", "share"),
         attr_sections=attr_sections,
+        gap_family=gap_family,
         attr_missing=out.missing("attribute_shares", "level", "brand", "source", "attribute", "yes_rate", "yes_rate_low", "yes_rate_high"),
         agreement=_agreement(out),
         comparison_plots=comparison_plots,
@@ -521,6 +524,36 @@ def _split_prompts(text) -> list[str]:
     return [t.strip() for t in str(text).split(" | ") if t.strip()]
 
 
+def _posters_caveat(usable: pd.DataFrame) -> str:
+    """One line: are photos clustered by poster, or assumed independent?"""
+    posters = usable["poster"].fillna("").astype(str) if "poster" in usable else pd.Series([], dtype=str)
+    known = posters[posters != ""]
+    if known.empty:
+        return ("No poster ids were given, so photos are assumed independent; where one poster posted "
+                "several photos, intervals and tests are too narrow.")
+    return (f"Intervals and tests treat the photos of each of the {known.nunique()} posters as a cluster "
+            f"(effective n beside n in the CSVs).")
+
+
+def _gap_family(gaps) -> str:
+    """What 'significant gap' means in this report, from the attribute_gaps table."""
+    if gaps is None or "family" not in gaps or "p_value" not in gaps:
+        return ""
+    tested = int(gaps["p_value"].notna().sum())
+    if not tested:
+        return ""
+    text = (f"A gap is marked significant only after Benjamini-Hochberg over the family of all "
+            f"{tested} brand × attribute gaps")
+    if "context_q_value" in gaps and gaps["context_q_value"].notna().any():
+        text += ", and only if it stays significant, with the same sign, after adjusting for context (Mantel-Haenszel)"
+    text += f": {int(gaps['significant'].astype(bool).sum())} of {tested}."
+    if "power_warning" in gaps:
+        weak = int((gaps["power_warning"].fillna("").astype(str) != "").sum())
+        if weak:
+            text += f" {weak} of {tested} brand × attribute cells have too few photos to detect a 10-point gap at 80 % power."
+    return text
+
+
 def _overview(run: dict, out: OutputFolder, usable: pd.DataFrame, images_all: pd.DataFrame,
               choice: ThumbnailChoice, thumbs: dict, notes: list[str]) -> dict:
     counts_rows = []
@@ -556,6 +589,7 @@ def _overview(run: dict, out: OutputFolder, usable: pd.DataFrame, images_all: pd
         "skipped_table": html_table(skipped, ["relpath", "brand", "source", "status", "reason", "duplicate_of"])
         if len(skipped) else None,
         "near_duplicates": near,
+        "posters": _posters_caveat(usable),
         "settings": flatten_settings(settings),
         "study_attributes": [str(a.get("name", "")) for a in study_attrs if isinstance(a, dict)],
         "stage_seconds": [(k, f"{float(v):.1f} s") for k, v in (run.get("stage_seconds") or {}).items()],
