@@ -154,3 +154,54 @@ def test_power_warning_for_small_cells():
     assert small > 0.2 and large < 0.06
     warn = power_warning([small, large, np.nan])
     assert "10-point" in warn[0] and warn[1] == "" and warn[2] != ""
+
+
+def test_poster_aware_gap_test_holds_its_level_under_clustering(capsys):
+    # Simulation with known truth: no real gap (both sources 0.3); each source's
+    # photos come from 18 posters x 5 (ICC 0.3). The
+    # photo-independent chi-square rejects far more often than 5 %; the poster-aware
+    # test stays near its level.
+    from scipy.stats import chi2_contingency
+
+    rng = np.random.default_rng(77)
+    reps = 400
+    aware = naive = 0
+    for _ in range(reps):
+        calls, ids = _clustered_sample(rng, 18, 5, 0.3, 0.3)
+        owned, owned_ids = _clustered_sample(rng, 18, 5, 0.3, 0.3)
+        s1, s2 = cluster_summary(calls, ids), cluster_summary(owned, owned_ids)
+        aware += gap_test(s1.rate, s1.interval_n, s2.rate, s2.interval_n)[0] < 0.05
+        table = [[calls.sum(), 90 - calls.sum()], [owned.sum(), 90 - owned.sum()]]
+        naive += chi2_contingency(table, correction=False)[1] < 0.05
+    with capsys.disabled():
+        print(f"\nno true gap, 400 replications: poster-aware test rejects {aware / reps:.3f}, "
+              f"photo-independent chi-square {naive / reps:.3f}")
+    assert aware / reps <= 0.08
+    assert naive / reps > 0.10
+
+
+def test_attribute_shares_use_the_poster_column():
+    import pandas as pd
+
+    from explore.attributes.shares import attribute_gaps, attribute_shares
+
+    rng = np.random.default_rng(21)
+    calls, ids = _clustered_sample(rng, 10, 9, 0.4, 0.4)
+    images = pd.DataFrame({
+        "image_id": [f"i{k}" for k in range(180)], "brand": "Alpha", "category": "c",
+        "source": ["consumer"] * 90 + ["owned"] * 90,
+        "poster": list(ids) + [""] * 90,
+    })
+    positive = np.r_[calls, (rng.random(90) < 0.4).astype(int)].astype(bool)
+    ia = pd.DataFrame({"image_id": images["image_id"], "attribute": "x", "positive": positive,
+                       "probability": positive.astype(float)})
+    defs = pd.DataFrame({"attribute": ["x"], "threshold": [0.5], "encoder_id": ["t"]})
+    shares = attribute_shares(ia, images, defs, bootstrap_samples=0).set_index(["level", "source"])
+    consumer, owned = shares.loc[("brand", "consumer")], shares.loc[("brand", "owned")]
+    low, high, s = yes_rate_interval(calls, ids)
+    assert consumer["effective_n"] == pytest.approx(s.effective_n[0]) and consumer["effective_n"] < 60
+    assert consumer["yes_rate_low"] == pytest.approx(low[0]) and consumer["posters"] == 10
+    assert owned["effective_n"] == 90 and "assumed independent" in owned["clustering"]
+    gaps = attribute_gaps(shares.reset_index())
+    assert gaps["consumer_effective_n"].iloc[0] == pytest.approx(s.effective_n[0])
+    assert gaps["min_detectable_gap_effective"].iloc[0] > gaps["min_detectable_gap"].iloc[0]
