@@ -539,3 +539,23 @@ def test_photos_per_poster_cap_is_seeded_and_keeps_rows(tmp_path):
     assert first.loc[first["poster"] == "@bob", "status"].tolist() == ["ok"]
     assert first["status"].tolist() == again["status"].tolist()  # seeded
     assert "max_per_poster = 2" in first.loc[first["status"] == "over_poster_cap", "reason"].iloc[0]
+
+
+def test_study_keys_for_posters_reach_collect(tmp_path):
+    from explore.collect import collect_study_images
+    from explore.study import StudyError, study_from_dict
+
+    root = tmp_path / "photos"
+    lines = ["path,poster"]
+    for i in range(4):
+        save(smooth_photo(30 + i), root / f"Alpha/consumer/{i}.jpg")
+        lines.append(f"Alpha/consumer/{i}.jpg,@ann")
+    _manifest(tmp_path / "posters.csv", lines)
+    raw = {"images": {"root": "photos", "metadata": "posters.csv", "max_per_poster": 3}, "seed": 2}
+    study = study_from_dict(raw, tmp_path / "study.toml")
+    table = collect_study_images(study, progress=False)
+    assert table["poster"].eq("@ann").all() and (table["status"] == "over_poster_cap").sum() == 1
+    with pytest.raises(StudyError, match="max_per_poster"):
+        study_from_dict({"images": {"root": "photos", "max_per_poster": -1}}, tmp_path / "study.toml")
+    with pytest.raises(StudyError, match="exclude each other"):
+        study_from_dict({"images": {"manifest": "m.csv", "metadata": "posters.csv"}}, tmp_path / "study.toml")
