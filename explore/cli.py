@@ -48,6 +48,15 @@ def _with_extra_attributes(study, specs: list[str]):
         extra = [parse_attribute_spec(spec) for spec in specs]
         study.attributes = add_attributes(study.attributes, extra, "--attribute (with the study's attributes)")
     return study
+LABELS_HELP = (
+    "hand labels CSV (overrides the study's [labels] file): the run checks each labelled "
+    "attribute and, from labels drawn at random (`explore label`), writes corrected shares "
+    "beside the model's yes-rates"
+)
+
+
+def _add_labels_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--labels", type=Path, default=None, help=LABELS_HELP)
 # --- end attributes options -----------------------------------------------------
 
 
@@ -78,11 +87,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("run", help="run a study end to end (every stage, reusing the cache)")
     p.add_argument("study", type=Path, help="study file (.toml)")
+    _add_labels_option(p)
     _add_encoder_options(p)
     _add_attribute_option(p)
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("demo", help="run the shipped demo study (fictional brands) end to end")
+    _add_labels_option(p)
     _add_encoder_options(p)
     _add_attribute_option(p)
     p.set_defaults(func=cmd_demo)
@@ -196,7 +207,8 @@ def _run(study_path: Path, args) -> int:
     from explore.study import load_study
 
     study = _with_extra_attributes(load_study(study_path), args.attribute)
-    summary = run_study(study, encoder_name=args.encoder, weights=args.weights, progress=not args.quiet)
+    summary = run_study(study, encoder_name=args.encoder, weights=args.weights,
+                        labels_path=getattr(args, "labels", None), progress=not args.quiet)
     print(f"study: {summary.study}")
     print(f"encoder: {summary.encoder_id}")
     print(

@@ -282,7 +282,9 @@ def brand_metrics(
     survey : the joined survey (output of :func:`join_survey`); rows whose
         status is not ``used`` are left out. ``None``: no survey.
     value : which column of ``attribute_shares`` is the photo metric
-        (``yes_rate``, the default: the model's yes-rate; or ``mean_probability``).
+        (``yes_rate``, the default: the corrected ``share`` where random hand
+        labels give one, else the model's yes-rate, recorded per row in
+        ``consumer_from`` / ``owned_from``; or ``mean_probability``).
 
     Returns
     -------
@@ -294,12 +296,23 @@ def brand_metrics(
     if missing:
         raise ValueError(f"attribute_shares: missing column(s) {', '.join(sorted(missing))}")
     rows = attribute_shares[attribute_shares["level"] == "brand"]
+    # The corrected share (from random hand labels) where it exists, else the model's yes-rate.
+    corrected = value == "yes_rate" and "share" in rows
+    if corrected:
+        rows = rows.assign(_metric=rows["share"].where(rows["share"].notna(), rows["yes_rate"]),
+                           _from=np.where(rows["share"].notna(), "share", "yes_rate"))
     wide = rows.pivot_table(
-        index=["category", "brand", "attribute"], columns="source", values=value, aggfunc="first"
+        index=["category", "brand", "attribute"], columns="source", values="_metric" if corrected else value,
+        aggfunc="first",
     )
     out = pd.DataFrame(index=wide.index)
     for source in ("consumer", "owned"):
         out[f"{source}_share"] = wide[source] if source in wide.columns else np.nan
+    if corrected:
+        origin = rows.pivot_table(index=["category", "brand", "attribute"], columns="source", values="_from",
+                                  aggfunc="first")
+        for source in ("consumer", "owned"):
+            out[f"{source}_from"] = origin[source].reindex(out.index) if source in origin.columns else ""
     out = out.reset_index()
     if survey is not None and len(survey):
         used = survey[survey["status"] == "used"][["brand", "attribute", "score"]]
@@ -1084,6 +1097,12 @@ def compare_study(
         notes.append("survey: none in the study; agreement covers consumer vs owned photos only")
 
     metrics = brand_metrics(attribute_shares, survey_table if survey is not None else None, value=value)
+    if "consumer_from" in metrics:
+        used = int((metrics[["consumer_from", "owned_from"]] == "share").to_numpy().sum())
+        total = int(metrics[["consumer_from", "owned_from"]].isin(["share", "yes_rate"]).to_numpy().sum())
+        notes.append(f"photo metric: corrected share for {used} of {total} brand x source x attribute values, "
+                     "the model's yes-rate for the rest" if used else "photo metric: the model's yes-rate "
+                     "(no random hand labels, so no corrected shares)")
     agreement = agreement_table(metrics)
     brands_per_category = metrics.groupby("category")["brand"].nunique()
     too_few = sorted(brands_per_category[brands_per_category < MIN_BRANDS].index)

@@ -76,6 +76,7 @@ def run_study(
     *,
     encoder_name: str | None = None,
     weights: Path | None = None,
+    labels_path: Path | None = None,
     progress: bool = True,
     log: Callable[[str], None] = print,
 ) -> RunSummary:
@@ -86,6 +87,9 @@ def run_study(
     study : the validated study.
     encoder_name : overrides ``study.encoder.name`` (e.g. from the command line).
     weights : overrides ``study.encoder.weights``.
+    labels_path : hand labels (overrides the study's ``[labels] file``): the run
+        checks each labelled attribute (``attribute_check`` tables) and, from
+        random labels, writes corrected shares beside the yes-rates.
     progress : show progress bars on long steps.
     log : where one-line notices go.
 
@@ -104,6 +108,8 @@ def run_study(
     from explore import compare
 
     survey = compare.read_survey(study.survey.file) if study.survey.file else None
+    labels_path = labels_path or study.labels.file
+    label_table = read_labels_file(labels_path) if labels_path else None  # a bad file fails early too
 
     from explore.cache import check_not_busy
 
@@ -144,6 +150,21 @@ def run_study(
     with timer("attributes"):
         from explore import attributes
 
+        labels = None
+        if label_table is not None:
+            labels, warnings = attributes.read_labels(
+                label_table, images, [a.name for a in study.attributes], where=str(labels_path),
+                base=Path(labels_path).parent,
+            )
+            for line in warnings:
+                log(line)
+            summary.notes += [f"labels: {w}" for w in warnings[:20]]
+            if len(warnings) > 20:
+                summary.notes.append(f"labels: ... and {len(warnings) - 20} more rows left out")
+            results, _ = check_labels(study, labels, embeddings, encoder, log=log)
+            if results:
+                summary.tables += write_tables(out, attributes.checks_table(results))
+                summary.notes += [f"check: {r.headline()}" for r in results]
         attribute_tables, attribute_notes = attributes.attribute_tables(
             images,
             embeddings.image_ids,
@@ -154,6 +175,7 @@ def run_study(
             encoder,
             seed=study.seed,
             saved_checks=read_saved_checks(out),
+            labels=labels,
         )
         summary.tables += write_tables(out, attribute_tables)
         summary.notes += [f"attributes: {note}" for note in attribute_notes]
@@ -278,6 +300,72 @@ def read_saved_checks(out: Path) -> dict:
     return data if isinstance(data, dict) else {}
 
 
+def read_labels_file(path: Path) -> pd.DataFrame:
+    """Read a labels CSV (BOM, semicolons and header case handled); errors name the file."""
+    from explore.attributes import parse_labels_text
+    from explore.study import StudyError
+
+    path = Path(path)
+    if not path.is_file():
+        raise FileNotFoundError(f"{path}: labels file not found")
+    try:
+        text = path.read_bytes().decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise StudyError(f"{path}: not UTF-8 text ({exc}); save the labels as UTF-8 CSV") from exc
+    return parse_labels_text(text, where=str(path))
+
+
+def check_labels(study: Study, labels: pd.DataFrame, embeddings, encoder, *, log: Callable[[str], None] = print):
+    """Check every labelled attribute (shared by ``explore check`` and ``explore run``).
+
+    The reported AUC and accuracy come from the random-sample labels when the
+    file records a random sample (``sample == "random"``); thresholds and the
+    probe are fitted on all labels, boundary ones included.
+
+    Returns
+    -------
+    (results, records): the ``AttributeCheck`` per labelled attribute, and
+    {attribute: what ``--save-...`` would store}.
+    """
+    from explore import attributes
+
+    row_of = {image_id: i for i, image_id in enumerate(embeddings.image_ids)}
+    saved_all = read_saved_checks(study.output)
+    results, records = [], {}
+    for attribute in study.attributes:
+        mine = labels[labels["attribute"] == attribute.name]
+        mine = mine[mine["image_id"].isin(row_of)]
+        if mine.empty:
+            continue
+        vectors = attributes.attribute_vectors(attribute, study.scoring.templates, encoder.encode_texts)
+        saved = {k: v for k, v in (saved_all.get(attribute.name) or {}).items() if k != "probe"}
+        saved, note = attributes.usable_check(saved or None, encoder.id, attributes.prompts_digest(vectors))
+        if note:
+            log(f"attribute '{attribute.name}': {note}")
+        threshold, threshold_from = attributes.resolve_threshold(attribute, study.scoring, saved)
+
+        def run_check(part):
+            rows = [row_of[i] for i in part["image_id"]]
+            return attributes.check_attribute(
+                attribute, vectors, part["label"].to_numpy(), embeddings.joint[rows], embeddings.cluster[rows],
+                encoder, threshold, threshold_from, seed=study.seed,
+                grades=part["grade"].to_numpy(float) if "grade" in part else None,
+            )
+
+        random = mine[mine["sample"] == "random"] if "sample" in mine else mine.iloc[0:0]
+        result = run_check(random if len(random) else mine)
+        result.sampled = attributes.describe_sample(mine)
+        if len(random) and len(random) < len(mine):
+            fitted = run_check(mine)  # thresholds and probe may use the boundary labels too
+            result.record = fitted.record
+            result.probe_auc, result.probe_auc_low, result.probe_auc_high = (
+                fitted.probe_auc, fitted.probe_auc_low, fitted.probe_auc_high)
+            result.probe_note = fitted.probe_note or "cross-validated on all labels, boundary sample included"
+        results.append(result)
+        records[attribute.name] = result
+    return results, records
+
+
 def check_study(
     study: Study,
     labels_path: Path,
@@ -292,9 +380,10 @@ def check_study(
     """Check the study's attributes against hand labels (``explore check``).
 
     Collects and embeds the study's images (through the cache, so a run before
-    makes this quick), reads the labels CSV (columns image, attribute, label),
-    checks every labelled attribute, writes the ``attribute_check`` tables
-    and, when asked, saves thresholds or linear probes for later runs.
+    makes this quick), reads the labels CSV (columns image, attribute, label,
+    and the sample design when a labelling sheet wrote it), checks every
+    labelled attribute, writes the ``attribute_check`` tables and, when asked,
+    saves thresholds or linear probes for later runs.
 
     Returns
     -------
@@ -304,12 +393,7 @@ def check_study(
     from explore.study import StudyError
 
     labels_path = Path(labels_path)
-    if not labels_path.is_file():
-        raise FileNotFoundError(f"{labels_path}: labels file not found")
-    try:
-        table = pd.read_csv(labels_path, dtype=str, keep_default_na=False)
-    except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as exc:
-        raise StudyError(f"{labels_path}: not a readable CSV file: {exc}") from exc
+    table = read_labels_file(labels_path)
 
     out = study.output
     out.mkdir(parents=True, exist_ok=True)
@@ -319,6 +403,11 @@ def check_study(
     )
     for line in warnings:
         log(line)
+    if labels.empty:
+        detail = "; ".join(warnings[:3])
+        raise StudyError(f"{labels_path}: no usable labels for any attribute of the study" + (f" ({detail})" if detail else ""))
+    for line in attributes.prevalence_labels(labels, where=str(labels_path))[1]:
+        log(line)
     settings = study.encoder
     encoder, notice = study_encoder(study, encoder_name, weights)
     if notice:
@@ -327,38 +416,16 @@ def check_study(
         images, encoder, cache_dir=out / "cache", batch_size=settings.batch_size, progress=progress
     )
     log(stats.describe())
-    row_of = {image_id: i for i, image_id in enumerate(embeddings.image_ids)}
 
+    results, _ = check_labels(study, labels, embeddings, encoder, log=log)
     saved_all = read_saved_checks(out)
-    results, to_save = [], {}
-    for attribute in study.attributes:
-        mine = labels[labels["attribute"] == attribute.name]
-        if mine.empty:
-            continue
-        rows = [row_of[i] for i in mine["image_id"]]
-        vectors = attributes.attribute_vectors(attribute, study.scoring.templates, encoder.encode_texts)
-        saved = {k: v for k, v in (saved_all.get(attribute.name) or {}).items() if k != "probe"}
-        saved, note = attributes.usable_check(saved or None, encoder.id, attributes.prompts_digest(vectors))
-        if note:
-            log(f"attribute '{attribute.name}': {note}")
-        threshold, threshold_from = attributes.resolve_threshold(attribute, study.scoring, saved)
-        result = attributes.check_attribute(
-            attribute,
-            vectors,
-            mine["label"].to_numpy(),
-            embeddings.joint[rows],
-            embeddings.cluster[rows],
-            encoder,
-            threshold,
-            threshold_from,
-            seed=study.seed,
-        )
-        results.append(result)
+    to_save = {}
+    for result in results:
         record, said = attributes.saved_record(result, save_threshold=save_threshold, save_probe=save_probe)
         if record is not None:
             record["saved_at"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
             record["labels_file"] = str(labels_path)
-            to_save[attribute.name] = record
+            to_save[result.attribute] = record
         if said:
             log(said)
     if not results:

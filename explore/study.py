@@ -130,6 +130,18 @@ class SurveySettings:
 
 
 @dataclass
+class LabelsSettings:
+    """Optional hand labels (CSV written by ``explore label``'s sheet, or by hand).
+
+    ``file``: image, attribute, label (and the sample design columns). A run
+    with labels checks each labelled attribute and, from random labels,
+    estimates corrected shares.
+    """
+
+    file: Path | None = None
+
+
+@dataclass
 class ReportSettings:
     """The self-contained HTML report."""
 
@@ -152,6 +164,7 @@ class Study:
     attributes: list[Attribute] = field(default_factory=list)
     contexts: ContextSettings = field(default_factory=ContextSettings)
     survey: SurveySettings = field(default_factory=SurveySettings)
+    labels: LabelsSettings = field(default_factory=LabelsSettings)
     report: ReportSettings = field(default_factory=ReportSettings)
 
     def category_of(self, brand: str) -> str:
@@ -174,6 +187,7 @@ _TOP_LEVEL_KEYS = {
     "attribute": "an array of tables ([[attribute]])",
     "contexts": "a table",
     "survey": "a table",
+    "labels": "a table",
     "report": "a table",
 }
 
@@ -262,6 +276,7 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
     contexts = _section(raw, "contexts", ContextSettings, where, base)
     check_context_settings(contexts, where)
     survey = _section(raw, "survey", SurveySettings, where, base)
+    labels = _section(raw, "labels", LabelsSettings, where, base)
     report = _section(raw, "report", ReportSettings, where, base)
 
     return Study(
@@ -276,6 +291,7 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
         attributes=attributes,
         contexts=contexts,
         survey=survey,
+        labels=labels,
         report=report,
     )
 

@@ -11,7 +11,8 @@ One file per concern:
   called by ``explore.run`` after the contexts stage;
 - ``shares``: brand and category yes-rates, consumer-vs-owned gaps, the stage entry
   :func:`attribute_tables`;
-- ``labels``: reading hand labels;
+- ``labels``: reading hand labels and their sample design;
+- ``correction``: corrected shares from random labels (stratified PPI++);
 - ``check``: checking scores against hand labels (AUC, thresholds, probe).
 
 Everything here is a pure function over numpy arrays and pandas DataFrames;
@@ -28,6 +29,7 @@ from explore.attributes.check import (
     check_attribute,
     checks_table,
     fit_probe,
+    harrell_c,
     reliability_table,
     roc_auc,
     roc_points,
@@ -41,7 +43,15 @@ from explore.attributes.intervals import (
     newcombe_interval,
     wilson_interval,
 )
-from explore.attributes.labels import LABEL_COLUMNS, read_labels
+from explore.attributes.correction import corrected_gaps, corrected_shares
+from explore.attributes.labels import (
+    DESIGN_COLUMNS,
+    LABEL_COLUMNS,
+    describe_sample,
+    parse_labels_text,
+    prevalence_labels,
+    read_labels,
+)
 from explore.attributes.prompts import (
     AttributeVectors,
     add_attributes,
@@ -68,9 +78,11 @@ from explore.attributes.testing import benjamini_hochberg, minimum_detectable_ga
 
 __all__ = [
     "MIN_LABELS_PER_CLASS", "PROBE_MIN_LABELS_PER_CLASS", "AttributeCheck", "accuracy_at",
-    "auc_interval", "check_attribute", "checks_table", "fit_probe", "reliability_table", "roc_auc",
+    "auc_interval", "check_attribute", "checks_table", "fit_probe", "harrell_c", "reliability_table", "roc_auc",
     "roc_points", "saved_record", "youden_threshold", "Z95", "bootstrap_mean_interval",
     "bootstrap_sums", "newcombe_interval", "wilson_interval", "LABEL_COLUMNS", "read_labels",
+    "DESIGN_COLUMNS", "describe_sample", "parse_labels_text", "prevalence_labels", "corrected_shares",
+    "corrected_gaps",
     "AttributeVectors", "add_attributes", "attribute_vectors", "build_prompts", "ensemble",
     "parse_attribute_spec", "prompts_digest", "attribute_bias", "neutral_vector",
     "pair_probabilities", "platt_common_slope", "probe_probabilities", "resolve_threshold",

@@ -120,6 +120,25 @@ def reliability_table(labels: np.ndarray, probabilities: np.ndarray, bins: int =
 
 
 
+def harrell_c(outcome: np.ndarray, score: np.ndarray) -> float:
+    """Harrell's concordance index (Harrell, Califf, Pryor, Lee & Rosati 1982).
+
+    Over pairs with different outcomes (graded answers), the share whose
+    scores are ordered the same way; tied scores count one half. Counted
+    pair by pair (O(n^2), fine for a labelling sheet).
+    """
+    y = np.asarray(outcome, dtype=np.float64)
+    s = np.asarray(score, dtype=np.float64)
+    dy = np.sign(y[:, None] - y[None, :])
+    ds = np.sign(s[:, None] - s[None, :])
+    pairs = dy != 0
+    if not pairs.any():
+        return float("nan")
+    agree = (dy == ds) & pairs
+    ties = (ds == 0) & pairs
+    return float((agree.sum() + 0.5 * ties.sum()) / pairs.sum())
+
+
 @dataclass
 class AttributeCheck:
     """How well one attribute's zero-shot scores agree with hand labels."""
@@ -149,6 +168,13 @@ class AttributeCheck:
     probe_auc_low: float = float("nan")
     probe_auc_high: float = float("nan")
     probe_note: str = ""
+    #: How the labels were sampled (e.g. "random within brand x source (seed 7, sheet ...)").
+    sampled: str = ""
+    #: Graded answers (1-7): how many, Spearman's rho (with p) and Harrell's C against the probability.
+    grade_n: int = 0
+    grade_spearman: float = float("nan")
+    grade_spearman_p: float = float("nan")
+    grade_harrell_c: float = float("nan")
     #: What ``--save-...`` would store: {"threshold", "prompts_digest", "probe": {...}}.
     record: dict = field(default_factory=dict)
 
@@ -159,19 +185,32 @@ class AttributeCheck:
             "auc_low", "auc_high", "mann_whitney_p", "better_than_chance", "threshold",
             "threshold_from", "accuracy", "best_threshold", "best_accuracy", "youden_j",
             "chance_accuracy", "probe_auc", "probe_auc_low", "probe_auc_high", "probe_note",
+            "sampled", "grade_n", "grade_spearman", "grade_spearman_p", "grade_harrell_c",
         ]
         return {k: getattr(self, k) for k in keys}
+
+    def headline(self) -> str:
+        """One line for the run notes."""
+        if not self.enough:
+            return f"attribute '{self.attribute}': {self.warning}"
+        verdict = "better than chance" if self.better_than_chance else "not shown to be better than chance"
+        extra = ""
+        if self.enough and np.isfinite(self.accuracy) and self.accuracy < self.chance_accuracy:
+            extra = f"; accuracy {self.accuracy:.0%} is below always guessing the larger class ({self.chance_accuracy:.0%})"
+        return (f"attribute '{self.attribute}': AUC {self.auc:.2f} (95 % {self.auc_low:.2f}-{self.auc_high:.2f}), "
+                f"{verdict}, {self.n} labels ({self.sampled or 'sample not recorded'}){extra}")
 
     def describe(self) -> str:
         """A readable report for the terminal."""
         head = (
             f"attribute '{self.attribute}': {self.n} labelled images "
             f"({self.n_positive} positive, {self.n_negative} negative)"
+            + (f"; {self.sampled}" if self.sampled else "")
         )
         if not self.enough:
             return f"{head}\n  WARNING: {self.warning}"
         lines = [head]
-        verdict = "better than chance" if self.better_than_chance else "NOT better than chance (interval includes 0.5)"
+        verdict = "better than chance" if self.better_than_chance else "not shown to be better than chance (interval includes 0.5)"
         lines.append(
             f"  zero-shot ROC AUC {self.auc:.3f} (95% {self.auc_low:.3f}-{self.auc_high:.3f}, "
             f"Mann-Whitney one-sided p = {self.mann_whitney_p:.3g}): {verdict}"
@@ -196,6 +235,11 @@ class AttributeCheck:
             )
             for r in self.descriptions.iloc[1:].itertuples(index=False):
                 lines.append(f"    then {r.side} '{r.description}' (AUC {r.auc:.3f})")
+        if self.grade_n:
+            lines.append(
+                f"  graded answers (1-7, {self.grade_n} images): Spearman rho {self.grade_spearman:.3f} "
+                f"(p = {self.grade_spearman_p:.3g}), Harrell's C {self.grade_harrell_c:.3f}"
+            )
         if self.probe_note:
             lines.append(f"  linear probe: {self.probe_note}")
         else:
@@ -253,6 +297,7 @@ def check_attribute(
     threshold_from: str,
     *,
     seed: int = 0,
+    grades: np.ndarray | None = None,
 ) -> AttributeCheck:
     """Compare an attribute's zero-shot probabilities with hand labels.
 
@@ -265,6 +310,7 @@ def check_attribute(
     encoder : gives ``id``, ``logit_scale`` and ``logit_bias``.
     threshold, threshold_from : the threshold scoring uses now, and its origin.
     seed : the study seed (probe folds).
+    grades : optional (n,) graded answers 1-7 (NaN where none): rank agreement with the probability.
     """
     from scipy.stats import mannwhitneyu
 
@@ -283,6 +329,16 @@ def check_attribute(
 
     bias = attribute_bias(encoder, vectors, neutral_vector(encoder))
     p = pair_probabilities(joint, vectors.positive, vectors.negative, encoder.logit_scale, bias)
+    if grades is not None:
+        g = np.asarray(grades, dtype=np.float64)
+        ok = np.isfinite(g)
+        if ok.sum() >= 3 and len(np.unique(g[ok])) > 1:
+            from scipy.stats import spearmanr
+
+            rho = spearmanr(g[ok], p[ok])
+            result.grade_n = int(ok.sum())
+            result.grade_spearman, result.grade_spearman_p = float(rho.statistic), float(rho.pvalue)
+            result.grade_harrell_c = harrell_c(g[ok], p[ok])
     result.auc, result.auc_low, result.auc_high = auc_interval(y, p)
     result.mann_whitney_p = float(mannwhitneyu(p[y == 1], p[y == 0], alternative="greater").pvalue)
     result.better_than_chance = bool(result.auc_low > 0.5)

@@ -190,7 +190,8 @@ def score_attributes(
 
     Returns
     -------
-    image_attributes : long table image_id, attribute, probability, positive.
+    image_attributes : long table image_id, attribute, probability, positive,
+        zero_shot_probability (the prompt pair's, also when a probe scores).
     attribute_definitions : one row per attribute with prompts, threshold and its origin.
     notes : one line per ignored saved check.
     """
@@ -205,15 +206,14 @@ def score_attributes(
             notes.append(f"attribute '{attribute.name}': {note}")
         threshold, threshold_from = resolve_threshold(attribute, scoring, saved)
         bias = attribute_bias(encoder, vectors, neutral)
+        zero_shot = pair_probabilities(joint, vectors.positive, vectors.negative, encoder.logit_scale, bias)
         if saved and saved.get("probe"):
             probe = saved["probe"]
             source = cluster if probe.get("vectors", "cluster") == "cluster" else joint
             probability = probe_probabilities(source, probe["coef"], probe["intercept"])
             scored_by = "probe"
         else:
-            probability = pair_probabilities(
-                joint, vectors.positive, vectors.negative, encoder.logit_scale, bias
-            )
+            probability = zero_shot
             scored_by = "zero-shot"
         long_tables.append(
             pd.DataFrame(
@@ -222,6 +222,9 @@ def score_attributes(
                     "attribute": attribute.name,
                     "probability": probability.astype(np.float32),
                     "positive": probability >= threshold,
+                    # kept for corrected shares: a probe may have been fitted on the very labels
+                    # that correct it, so the rectifier always uses the prompt pair's probability
+                    "zero_shot_probability": np.asarray(zero_shot).astype(np.float32),
                 }
             )
         )
@@ -244,6 +247,7 @@ def score_attributes(
     image_attributes = (
         pd.concat(long_tables, ignore_index=True)
         if long_tables
-        else pd.DataFrame({"image_id": [], "attribute": [], "probability": [], "positive": []})
+        else pd.DataFrame({"image_id": [], "attribute": [], "probability": [], "positive": [],
+                           "zero_shot_probability": []})
     )
     return image_attributes, pd.DataFrame(definitions), notes

@@ -222,6 +222,38 @@ def describe_gaps(gaps: pd.DataFrame) -> str:
     return text
 
 
+#: Corrected-share columns of ``attribute_shares`` (NaN where no random labels exist).
+SHARE_COLUMNS = [
+    "share", "share_low", "share_high", "share_method", "share_lambda", "labels_used", "labels_positive",
+    "labels_only_low", "labels_only_high",
+]
+#: Corrected-gap columns of ``attribute_gaps``.
+SHARE_GAP_COLUMNS = ["share_gap", "share_gap_low", "share_gap_high"]
+
+
+def add_corrected(shares: pd.DataFrame, gaps: pd.DataFrame, corrected: pd.DataFrame, corrected_gap: pd.DataFrame):
+    """Put the corrected shares beside the yes-rate columns (after ``yes_rate_index``) and gaps after the yes-rate gap."""
+    keys = ["level", "brand", "category", "source", "attribute"]
+    part = corrected[keys + SHARE_COLUMNS] if len(corrected) else pd.DataFrame(columns=keys + SHARE_COLUMNS)
+    merged = shares.merge(part, on=keys, how="left")
+    merged["share_method"] = merged["share_method"].fillna("").astype(str)
+    merged["labels_used"] = merged["labels_used"].fillna(0).astype(int)
+    merged["labels_positive"] = merged["labels_positive"].fillna(0).astype(int)
+    at = list(shares.columns).index("yes_rate_index") + 1 if "yes_rate_index" in shares else len(shares.columns)
+    order = list(shares.columns[:at]) + SHARE_COLUMNS + list(shares.columns[at:])
+    merged = merged[order]
+    gkeys = ["brand", "category", "attribute"]
+    gpart = corrected_gap[gkeys + SHARE_GAP_COLUMNS] if len(corrected_gap) else pd.DataFrame(columns=gkeys + SHARE_GAP_COLUMNS)
+    gmerged = gaps.merge(gpart, on=gkeys, how="left")
+    for c in SHARE_GAP_COLUMNS:
+        gmerged[c] = gmerged[c].astype(float)
+    gat = list(gaps.columns).index("yes_rate_gap_high") + 1 if "yes_rate_gap_high" in gaps else len(gaps.columns)
+    gmerged = gmerged[list(gaps.columns[:gat]) + SHARE_GAP_COLUMNS + list(gaps.columns[gat:])]
+    for c in ("share", "share_low", "share_high", "share_lambda", "labels_only_low", "labels_only_high"):
+        merged[c] = merged[c].astype(float)
+    return merged, gmerged
+
+
 def attribute_tables(
     images: pd.DataFrame,
     image_ids: Sequence[str],
@@ -233,25 +265,62 @@ def attribute_tables(
     *,
     seed: int = 0,
     saved_checks: dict | None = None,
+    labels: pd.DataFrame | None = None,
 ) -> tuple[dict[str, pd.DataFrame], list[str]]:
     """The attributes stage: every table it writes, and notes for the run log.
+
+    ``labels`` (from :func:`explore.attributes.labels.read_labels`): rows with
+    ``sample == "random"`` give corrected shares (stratified PPI++ on the
+    zero-shot probability, :mod:`explore.attributes.correction`); other rows
+    are not used here.
 
     Returns
     -------
     ({"image_attributes", "attribute_definitions", "attribute_shares", "attribute_gaps"}, notes)
     """
+    from explore.attributes.correction import corrected_gaps, corrected_shares
+    from explore.attributes.labels import prevalence_labels
+
     image_attributes, definitions, notes = score_attributes(
         image_ids, joint, cluster, attributes, scoring, encoder, saved_checks
     )
     shares = attribute_shares(
         image_attributes, images, definitions, bootstrap_samples=scoring.bootstrap_samples, seed=seed
     )
+    gaps = attribute_gaps(shares)
+    random = pd.DataFrame()
+    if labels is not None and len(labels):
+        random, label_notes = prevalence_labels(labels, where="labels")
+        notes += label_notes
+    zero_shot = image_attributes[["image_id", "attribute", "zero_shot_probability"]].rename(
+        columns={"zero_shot_probability": "probability"}
+    ) if len(image_attributes) else image_attributes
+    corrected = corrected_shares(zero_shot, images, random) if len(random) else pd.DataFrame()
+    corrected_gap = corrected_gaps(zero_shot, images, random) if len(random) else pd.DataFrame()
+    shares, gaps = add_corrected(shares, gaps, corrected, corrected_gap)
+    for d in definitions.to_dict("records"):
+        name = d["attribute"]
+        mine = corrected[corrected["attribute"] == name] if len(corrected) else corrected
+        if len(mine):
+            r = mine.iloc[0]
+            how = (f"PPI++ with lambda {r.share_lambda:.2f}" if r.share_lambda > 0
+                   else "the labels alone: the model is not shown to be better than chance")
+            notes.append(
+                f"attribute '{name}': corrected shares from {int(mine['labels_used'].max())} random labels "
+                f"by {how} (AUC {r.label_auc:.2f}, 95 % {r.label_auc_low:.2f}-{r.label_auc_high:.2f})"
+            )
+        if str(d.get("threshold_from", "")).startswith("check"):
+            notes.append(
+                f"attribute '{name}': its threshold{' and probe' if d.get('scored_by') == 'probe' else ''} "
+                "were fitted on hand labels; the yes-rate with them is still the model's yes-rate, not a "
+                "prevalence" + ("" if len(mine) else ": label a random sample (`explore label`) for corrected shares")
+            )
     return (
         {
             "image_attributes": image_attributes,
             "attribute_definitions": definitions,
             "attribute_shares": shares,
-            "attribute_gaps": attribute_gaps(shares),
+            "attribute_gaps": gaps,
         },
         notes,
     )
