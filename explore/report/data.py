@@ -22,6 +22,8 @@ KNOWN_TABLES = (
     "attribute_definitions",
     "attribute_shares",
     "attribute_gaps",
+    "attribute_check",
+    "attribute_check_descriptions",
     "image_contexts",
     "contexts",
     "brand_contexts",
