@@ -132,6 +132,30 @@ def build_parser() -> argparse.ArgumentParser:
     _add_attribute_option(p)
     p.set_defaults(func=cmd_check)
 
+    # --- label (explore/labelsheet.py) -----------------------------------------------
+    p = sub.add_parser(
+        "label",
+        help="write an offline labelling sheet for a random sample of a run's images",
+        description="Draw a seeded random sample of a completed run's images within brand x source "
+        "(proportional to the image counts, at least 2 per stratum) and write one self-contained "
+        "HTML page to label it: yes / no / can't tell per image and attribute, keyboard shortcuts, "
+        "answers kept in the browser, and an export button saving the labels CSV that `explore "
+        "check` and `explore run --labels` read, sample design included. Random labels give "
+        "corrected shares; --boundary adds images near the decision threshold, marked as such and "
+        "used for thresholds and probes only.",
+    )
+    p.add_argument("study", type=Path, help="study file (.toml), or its output folder")
+    p.add_argument("--size", type=int, default=100, help="images in the random sample (default 100)")
+    p.add_argument("--seed", type=int, default=None, help="seed of the draw (default: the study's seed); recorded in the sheet")
+    p.add_argument("--boundary", type=int, default=0, metavar="N",
+                   help="add N images per attribute nearest its threshold (not used for shares; default 0)")
+    p.add_argument("--only", action="append", default=[], metavar="ATTRIBUTE",
+                   help="label only this attribute (repeatable; default: every attribute of the run)")
+    p.add_argument("--graded", action="store_true", help="also ask how strongly (1-7) per attribute")
+    p.add_argument("--out", type=Path, default=None, help="the page to write (default OUTPUT/labelsheet-SHEET.html)")
+    p.set_defaults(func=cmd_label)
+    # --- end label ----------------------------------------------------------------------
+
     # --- report (explore/report/) ---------------------------------------------------
     p = sub.add_parser(
         "report",
@@ -264,6 +288,35 @@ def cmd_init(args) -> int:
     print(f"next: explore run {path}")
     return 0
 # --- end init -----------------------------------------------------------------------
+
+
+# --- label (explore/labelsheet.py) ---------------------------------------------------
+def cmd_label(args) -> int:
+    import json
+
+    from explore.labelsheet import write_sheet
+    from explore.study import load_study
+
+    if args.study.is_dir():
+        folder = args.study
+        run = folder / "run.json"
+        seed = json.loads(run.read_text(encoding="utf-8")).get("settings", {}).get("seed", 0) if run.is_file() else 0
+    else:
+        study = load_study(args.study)
+        folder, seed = study.output, study.seed
+    seed = args.seed if args.seed is not None else seed
+    tmp = folder / "labelsheet.html.tmp"
+    path, facts = write_sheet(folder, args.out or tmp, size=args.size, seed=seed, attributes=args.only or None,
+                              boundary=args.boundary, graded=args.graded, progress=not args.quiet)
+    if args.out is None:
+        path = path.replace(folder / f"labelsheet-{facts['sheet']}.html")
+    print(f"sheet {facts['sheet']}: {facts['random']} images drawn at random within {facts['strata']} brand x "
+          f"source strata (seed {seed})" + (f", {facts['boundary']} near the decision boundary" if facts["boundary"] else "")
+          + f"; attributes: {', '.join(facts['attributes'])}")
+    print(f"labelling sheet: {path}")
+    print("open it in a browser, label, press 'Export labels CSV', then: explore run STUDY --labels FILE.csv")
+    return 0
+# --- end label -----------------------------------------------------------------------
 
 
 # --- report (explore/report/) -------------------------------------------------------

@@ -1,9 +1,9 @@
 """Drawing images to label: a random sample within brand x source, and a boundary sample.
 
 The random sample is stratified by brand x source (the strata the corrected
-shares use), allocated proportionally to the strata's image counts with at
-least two per stratum (so each stratum's variance can be estimated; common
-practice), the remainders going to the largest fractional parts. It is
+shares use), allocated proportionally to the strata's image counts (largest
+remainder rounding) with at least two per stratum (so each stratum's variance
+can be estimated; common practice). It is
 seeded, so the same seed draws the same images. The optional boundary sample
 takes, per attribute, the images whose probability is closest to the
 threshold among those not drawn at random: useful for fitting thresholds and
@@ -25,24 +25,29 @@ def stratum_name(brand: str, source: str) -> str:
 
 
 def allocate(sizes: list[int], total: int, minimum: int = MIN_PER_STRATUM) -> list[int]:
-    """Proportional allocation of ``total`` draws over strata of ``sizes``, at least ``minimum`` each.
+    """Proportional allocation of ``total`` draws over strata of ``sizes`` (largest remainder).
 
-    Largest-remainder rounding; never more than a stratum holds.
+    A stratum then gets at least ``minimum`` (or all its images, when fewer),
+    taken from the stratum with the most draws; never more than a stratum holds.
     """
-    sizes = [int(s) for s in sizes]
-    base = [min(s, minimum) for s in sizes]
-    left = total - sum(base)
-    if left <= 0:
-        return base
-    room = np.array([s - b for s, b in zip(sizes, base)], dtype=np.float64)
-    if room.sum() <= left:
-        return sizes
-    want = room / room.sum() * left
-    extra = np.floor(want).astype(int)
-    for k in np.argsort(-(want - extra), kind="mergesort")[: left - int(extra.sum())]:
-        extra[k] += 1
-    extra = np.minimum(extra, room.astype(int))
-    return [b + int(e) for b, e in zip(base, extra)]
+    sizes = np.asarray([int(s) for s in sizes], dtype=np.int64)
+    total = int(min(total, sizes.sum()))
+    if total <= 0 or sizes.sum() == 0:
+        return [0] * len(sizes)
+    quota = total * sizes / sizes.sum()
+    counts = np.floor(quota).astype(np.int64)
+    for k in np.argsort(-(quota - counts), kind="mergesort")[: total - int(counts.sum())]:
+        counts[k] += 1
+    floor = np.minimum(sizes, minimum)
+    for k in np.flatnonzero(counts < floor):
+        while counts[k] < floor[k]:
+            spare = np.flatnonzero(counts > floor)
+            if not len(spare):
+                break
+            donor = spare[np.argmax(counts[spare])]
+            counts[donor] -= 1
+            counts[k] += 1
+    return [int(c) for c in counts]
 
 
 def random_sample(images: pd.DataFrame, size: int, seed: int) -> pd.DataFrame:
