@@ -686,6 +686,44 @@ def test_check_command_refuses_bad_inputs(labelled_tree, tmp_path, capsys):
     assert "attribute 'animal' is defined twice" in capsys.readouterr().err
 
 
+def test_run_with_labels_writes_checks_corrected_shares_and_the_report(labelled_tree, capsys):
+    """`explore run --labels`: one run checks, corrects and reports (bundled encoder; the
+    vectors are cached by the check tests above, and their saved probe now scores the
+    attribute, so this also runs the corrected shares' zero-shot rectifier end to end)."""
+    from explore import collect
+    from explore.attributes.sampling import random_sample
+    from explore.cli import main
+    from explore.study import load_study
+
+    study_path = labelled_tree / "study.toml"
+    study = load_study(study_path)
+    images = collect.collect_study_images(study, progress=False)
+    truth = pd.read_csv(labelled_tree / "labels.csv").set_index("image")["label"]
+    sample = random_sample(images, 24, seed=5)
+    rel = images.set_index("image_id")["relpath"]
+    rows = pd.DataFrame({
+        "image": sample.image_id, "attribute": "animal",
+        "label": [int(truth[rel[i]]) for i in sample.image_id], "grade": "", "sample": "random",
+        "stratum": sample.stratum, "stratum_size": sample.stratum_size, "drawn": sample.drawn, "seed": 5,
+        "sheet": "t1",
+    })
+    path = labelled_tree / "random_labels.csv"
+    rows.to_csv(path, index=False, sep=";")  # a semicolon file, as a spreadsheet may save it
+    assert main(["--quiet", "run", str(study_path), "--labels", str(path), "--encoder", "bundled"]) == 0
+    printed = capsys.readouterr().out
+    assert "check: attribute 'animal': AUC" in printed and "corrected shares from" in printed
+    out = study.output
+    check = pd.read_csv(out / "attribute_check.csv").iloc[0]
+    assert check.n == 24 and "24 random within brand x source (4 strata, seed 5, sheet t1)" in check.sampled
+    shares = pd.read_parquet(out / "attribute_shares.parquet")
+    brand = shares[(shares.level == "brand") & (shares.source == "all")].set_index("brand")
+    assert brand["share"].notna().all() and (brand["labels_used"] == 12).all()
+    # half of each brand's photos are cats (the fixture plants it): the intervals cover 0.5
+    assert ((brand.share_low <= 0.5) & (0.5 <= brand.share_high)).all()
+    report = (out / "report.html").read_text(encoding="utf-8")
+    assert "checked against hand labels" in report and "Shown: corrected shares below" in report
+
+
 # --------------------------------------------------------------------------
 # The demo scenario (fictional brands, planted attribute levels), bundled encoder
 

@@ -180,3 +180,4 @@ def test_corrected_shares_in_the_stage_use_zero_shot_not_the_probe():
                                        labels=plain)
     assert tables["attribute_shares"]["share"].isna().all()
     assert any("not to estimate shares" in n for n in notes)
+
