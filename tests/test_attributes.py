@@ -720,6 +720,8 @@ def test_run_with_labels_writes_checks_corrected_shares_and_the_report(labelled_
     assert brand["share"].notna().all() and (brand["labels_used"] == 12).all()
     # half of each brand's photos are cats (the fixture plants it): the intervals cover 0.5
     assert ((brand.share_low <= 0.5) & (0.5 <= brand.share_high)).all()
+    gaps = pd.read_parquet(out / "attribute_gaps.parquet")  # rewritten after contexts: the corrected gap stays
+    assert {"share_gap", "share_gap_low", "share_gap_high"} <= set(gaps.columns) and gaps["share_gap"].notna().all()
     report = (out / "report.html").read_text(encoding="utf-8")
     assert "checked against hand labels" in report and "Shown: corrected shares below" in report
 
