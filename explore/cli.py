@@ -20,7 +20,7 @@ def _add_encoder_options(p: argparse.ArgumentParser) -> None:
         "--encoder",
         choices=["auto", "bundled", "clip"],
         help="encoder family (default: the study's, else auto = clip when its weights are "
-        "present locally, otherwise bundled)",
+        "present locally or can be downloaded now, otherwise bundled)",
     )
     p.add_argument("--weights", type=Path, help="local open_clip checkpoint file for --encoder clip")
 
@@ -70,8 +70,22 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--quiet", action="store_true", help="no progress bars")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
-    p = sub.add_parser("encoders", help="list encoder families and whether each can run here")
+    p = sub.add_parser(
+        "encoders",
+        help="list encoder families, whether each can run here, and the catalogue of CPU-worthy clip models",
+    )
     p.set_defaults(func=cmd_encoders)
+
+    p = sub.add_parser(
+        "fetch-model",
+        help="download clip weights ahead of time (verified) and say which file to copy to an offline machine",
+    )
+    p.add_argument(
+        "model", nargs="?", metavar="MODEL[/TAG]",
+        help="open_clip model and pretrained tag, e.g. ViT-B-32/datacomp_xl_s13b_b90k (default: the default model)",
+    )
+    p.add_argument("--to", type=Path, metavar="FOLDER", help="also copy the file into FOLDER, ready to carry over")
+    p.set_defaults(func=cmd_fetch_model)
 
     p = sub.add_parser(
         "embed",
@@ -186,12 +200,86 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def cmd_encoders(args) -> int:
+    import math
+
     from explore.encoders import describe_encoders
+    from explore.encoders.catalogue import CATALOGUE, RESULTS_SOURCE, SPEED_SOURCE, choose_default
+    from explore.encoders.clip import find_local_weights
+    from explore.study import DEFAULT_CLIP_MODEL, DEFAULT_CLIP_PRETRAINED
 
     for row in describe_encoders():
         state = "ready" if row["available"] else "not available"
         print(f"{row['name']:<10} {state:<14} {row['model']}")
         print(f"{'':<10} {row['detail']}")
+
+    def pct(x):
+        return f"{100 * x:.1f}" if math.isfinite(x) else "-"
+
+    print("\nclip models worth running on a CPU (--encoder clip with [encoder] model / pretrained):")
+    print(f"{'model':<15} {'pretrained':<22} {'IN-1k %':>7} {'38-task':>7} {'img/s':>6} {'MB':>5}  weights")
+    for e in CATALOGUE:
+        local = find_local_weights(e.model, e.pretrained)
+        where = f"local ({local.path})" if local.path else "not local (explore fetch-model " + e.key + ")"
+        mark = " *" if (e.model, e.pretrained) == (DEFAULT_CLIP_MODEL, DEFAULT_CLIP_PRETRAINED) else ""
+        mean = f"{e.mean_38:.3f}" if math.isfinite(e.mean_38) else "-"
+        print(
+            f"{e.model:<15} {e.pretrained:<22} {pct(e.imagenet_top1):>7} {mean:>7} "
+            f"{e.images_per_second:>6.1f} {e.weights_mb:>5.0f}  {where}{mark}"
+        )
+        if e.note:
+            print(f"{'':<15} {e.note}")
+    _, reason = choose_default()
+    print(f"* default: {reason}")
+    print(f"IN-1k % and 38-task mean: zero-shot, published in {RESULTS_SOURCE}; img/s: {SPEED_SOURCE}, "
+          "random weights, end to end (decode + preprocess + model), 2 cores")
+    return 0
+
+
+def cmd_fetch_model(args) -> int:
+    import shutil
+
+    from explore.encoders.clip import find_local_weights
+    from explore.encoders.fetch import fetch_weights
+    from explore.study import DEFAULT_CLIP_MODEL, DEFAULT_CLIP_PRETRAINED
+
+    model, _, pretrained = (args.model or "").partition("/")
+    model = model or DEFAULT_CLIP_MODEL
+    if not pretrained:
+        from explore.encoders.catalogue import find
+
+        entry = find(model, None)
+        pretrained = entry.pretrained if entry else (DEFAULT_CLIP_PRETRAINED if model == DEFAULT_CLIP_MODEL else "")
+    if not pretrained:
+        print(f"explore: error: name the pretrained tag too: {model}/TAG (open_clip.list_pretrained())", file=sys.stderr)
+        return 2
+    found = find_local_weights(model, pretrained)
+    if found.path is not None and found.path.is_file():
+        path = found.path
+        print(f"already on this machine: {path}")
+    else:
+        print(f"fetching {model} / {pretrained} ...")
+        fetched = fetch_weights(model, pretrained, progress=None if args.quiet else sys.stderr)
+        path = fetched.path
+        print(f"stored and verified: {fetched.describe()}")
+    real = Path(path).resolve()  # the hub cache keeps a symlink to the blob
+    carry = real
+    if args.to:
+        args.to.mkdir(parents=True, exist_ok=True)
+        carry = args.to / f"{model}-{pretrained}{Path(path).suffix}"
+        shutil.copyfile(real, carry)
+        print(f"copied to: {carry}")
+    size = carry.stat().st_size / 1e6
+    print(
+        f"\nThe file to copy to an offline machine: {carry} ({size:.0f} MB)\n"
+        "There, point the study at it (the model and tag keep its preprocessing):\n"
+        "  [encoder]\n"
+        '  name = "clip"\n'
+        f'  model = "{model}"\n'
+        f'  pretrained = "{pretrained}"\n'
+        f'  weights = "/path/on/that/machine/{carry.name}"\n'
+        f"or run with --encoder clip --weights /path/on/that/machine/{carry.name}, "
+        f"or set EXPLORE_CLIP_WEIGHTS to that path (auto then takes clip)."
+    )
     return 0
 
 

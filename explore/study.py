@@ -16,8 +16,8 @@ from pathlib import Path
 from typing import Any, get_args, get_origin, get_type_hints
 
 ENCODER_NAMES = ("auto", "bundled", "clip")
-DEFAULT_CLIP_MODEL = "ViT-B-32"
-DEFAULT_CLIP_PRETRAINED = "laion2b_s34b_b79k"
+DEFAULT_CLIP_MODEL = "ViT-B-32-256"  # chosen by evidence: explore.encoders.catalogue.choose_default
+DEFAULT_CLIP_PRETRAINED = "datacomp_s34b_b86k"
 DEFAULT_TEMPLATES = ["a photo that feels {}", "a picture that looks {}", "{}"]
 
 

@@ -272,7 +272,7 @@ def test_auto_finds_tag_weights_in_the_hub_cache(random_clip, clean_home, monkey
     hub = clean_home / ".cache" / "huggingface" / "hub"
     # open_clip's pretrained table: ViT-B-32 laion2b_s34b_b79k -> hf_hub 'laion/CLIP-ViT-B-32-laion2B-s34B-b79K/'
     snapshot = _fake_hub_cache(hub, "laion/CLIP-ViT-B-32-laion2B-s34B-b79K", {"open_clip_pytorch_model.bin": path})
-    encoder, notice = load_encoder("auto")
+    encoder, notice = load_encoder("auto", model="ViT-B-32", pretrained="laion2b_s34b_b79k")
     assert encoder.family == "clip" and str(snapshot) in notice
     assert encoder.id.endswith("ViT-B-32-laion2b_s34b_b79k")
     batch = torch.stack([preprocess(im) for im in sample_photos()])
@@ -287,7 +287,8 @@ def test_auto_finds_tag_weights_in_the_hub_cache(random_clip, clean_home, monkey
 # ---------------------------------------------------------------------------
 
 
-def test_auto_falls_back_to_bundled_with_notice(clean_home):
+def test_auto_falls_back_to_bundled_with_notice(clean_home, monkeypatch):
+    monkeypatch.setenv("HF_HUB_OFFLINE", "1")
     encoder, notice = load_encoder("auto")
     assert encoder.family == "bundled"
     assert "bundled" in notice and "no local weights" in notice and "ViT-B-32" in notice
@@ -348,7 +349,7 @@ def test_clip_without_weights_fails_fast_with_help(tmp_path, extra, why):
     assert elapsed < 10, f"took {elapsed:.1f} s"
     err = result.stderr
     assert "EncoderUnavailable" in err and why in err
-    assert "ViT-B-32" in err and "laion2b_s34b_b79k" in err  # names the model
+    assert "ViT-B-32-256" in err and "datacomp_s34b_b86k" in err  # names the default model
     assert str(tmp_path / "home" / ".cache" / "huggingface" / "hub") in err  # where it looked
     for how in ("--weights FILE", "[encoder] weights", "EXPLORE_CLIP_WEIGHTS", "open_clip's cache", "--encoder bundled"):
         assert how in err, how

