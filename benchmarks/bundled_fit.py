@@ -117,13 +117,16 @@ def main() -> int:
 
     pairs = list(zip(margins, ys, shifts))
     intercepts = [float(grid[int(np.argmin([nll(c, [pair]) for c in grid]))]) for pair in pairs]
-    bias = float(grid[int(np.argmin([nll(c, pairs) for c in grid]))])
+    # Which side of a pair is "positive" is arbitrary, and p must stay 1 - p when
+    # the sides are swapped, so each pair enters in both orientations.
+    both = pairs + [(-m, 1 - y, -shift) for m, y, shift in pairs]
+    bias = float(grid[int(np.argmin([nll(c, both) for c in grid]))])
     print(f"\nbefore ({BEFORE}): " + ", ".join(f"{k} {v:.3f}" for k, v in before[5].items()))
     print(f"after  (phrasing {phrasing!r}, template {template!r}, T={top_t}, temperature {temperature}): "
           + ", ".join(f"{k} {v:.3f}" for k, v in res.items()))
     print(f"(chosen from {len(rows)} candidates on the same set: the figures after are optimistic by the search)")
     print(f"Platt common slope on the three pairs: {scale:.2f}; per-pair intercepts after the neutral shift: "
-          + ", ".join(f"{c:+.2f}" for c in intercepts) + f"; shared intercept {bias:+.2f}")
+          + ", ".join(f"{c:+.2f}" for c in intercepts) + f"; shared intercept (pairs in both orientations) {bias:+.2f}")
     print("\nwrite in explore/encoders/bundled.py:")
     print(f"  DEFAULT_PHRASING = {phrasing!r}\n  DEFAULT_LABEL_TEMPLATE = {template!r}\n  DEFAULT_TOP_T = {top_t}")
     print(f"  DEFAULT_TEMPERATURE = {temperature}")
