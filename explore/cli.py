@@ -179,6 +179,12 @@ def build_parser() -> argparse.ArgumentParser:
         "network needed to open it.",
     )
     p.add_argument("study", type=Path, help="study file (.toml), or the output folder itself")
+    p.add_argument(
+        "--show-faces",
+        action="store_true",
+        help="do not blur detected faces in the thumbnails (the default blurs them; "
+        "study key report.blur_faces)",
+    )
     p.set_defaults(func=cmd_report)
     # --- end report -----------------------------------------------------------------
 
@@ -413,11 +419,12 @@ def cmd_report(args) -> int:
     from explore.study import load_study
 
     try:
+        blur = False if getattr(args, "show_faces", False) else None
         if args.study.is_dir():
-            path = write_report(args.study)
+            path = write_report(args.study, blur_faces=blur)
         else:
             study = load_study(args.study)
-            path = write_report(study.output, study)
+            path = write_report(study.output, study, blur_faces=blur)
     except ReportError as exc:
         print(f"explore: error: {exc}", file=sys.stderr)
         return 2

@@ -147,6 +147,9 @@ class ReportSettings:
 
     thumbnail_px: int = 112
     max_thumbnails: int = 20000
+    #: Blur detected faces in the report's pictures (``explore/report/faces.py``);
+    #: the vectors always come from the original photos.
+    blur_faces: bool = True
 
 
 @dataclass

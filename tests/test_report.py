@@ -218,7 +218,7 @@ def test_not_an_output_folder(tmp_path):
 def test_thumbnail_cache_makes_rebuilds_reuse_thumbnails(tmp_path):
     out = synth.make_output_folder(tmp_path, 20)
     first = _embedded(write_report(out).read_text(encoding="utf-8"), "explore-thumbs")
-    cache = out / "cache" / "thumbnails_96.parquet"
+    cache = out / "cache" / "thumbnails_96_faces_blurred.parquet"  # faces blurred by default
     assert cache.is_file() and len(pd.read_parquet(cache)) == 20
     # Remove the photos: a rebuild still has every thumbnail, from the cache.
     for p in pd.read_parquet(out / "images.parquet")["path"]:

@@ -204,7 +204,33 @@ def _setting_text(value) -> str:
 # Building the page
 
 
-def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, seed: int, cache_dir: Path | None) -> str:
+def faces_sentence(blur_faces: bool, face_counts: dict[str, int], n_thumbs: int) -> str:
+    """What the report did about faces, in one sentence for the privacy card."""
+    from explore.report.faces import DETECTOR
+
+    if not blur_faces:
+        return (
+            "Faces are NOT blurred in this file (turned off with report.blur_faces = false or "
+            "--show-faces): treat every thumbnail as showing people recognisably."
+        )
+    faces = sum(face_counts.values())
+    pictures = sum(1 for v in face_counts.values() if v)
+    return (
+        f"Faces are blurred where detected: {faces:,} face(s) in {pictures:,} of {n_thumbs:,} thumbnails "
+        f"({DETECTOR}). The detector misses some faces (small, turned, covered), so the caution above "
+        "still applies. Blurring is for this file only: the analysis used the original photos."
+    )
+
+
+def build_page(
+    out: OutputFolder,
+    *,
+    thumbnail_px: int,
+    max_thumbnails: int,
+    seed: int,
+    cache_dir: Path | None,
+    blur_faces: bool = True,
+) -> str:
     """The whole report as HTML text.
 
     Parameters
@@ -214,6 +240,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
     max_thumbnails : cap on embedded thumbnails (beyond: seeded sample + exemplars).
     seed : seed of that sample.
     cache_dir : where the thumbnail cache lives (None: no cache).
+    blur_faces : blur detected faces in the thumbnails (``explore.report.faces``).
     """
     from bokeh.embed import file_html
     from bokeh.resources import INLINE
@@ -293,9 +320,13 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
     usable_ids = usable["image_id"].tolist() if "image_id" in usable else []
     choice = choose_thumbnail_ids(usable_ids, exemplar_ids, max_thumbnails, seed)
     thumbs: dict[str, str] = {}
+    face_counts: dict[str, int] = {}
     if choice.ids and "path" in usable:
-        cache_file = cache_dir / f"thumbnails_{thumbnail_px}.parquet" if cache_dir else None
-        thumbs = thumbnails_for(usable, choice.ids, thumbnail_px, cache_file)
+        suffix = "_faces_blurred" if blur_faces else ""
+        cache_file = cache_dir / f"thumbnails_{thumbnail_px}{suffix}.parquet" if cache_dir else None
+        thumbs = thumbnails_for(
+            usable, choice.ids, thumbnail_px, cache_file, blur_faces=blur_faces, face_counts=face_counts
+        )
         unreadable = len(choice.ids) - len(thumbs)
         if unreadable:
             notes.append(
@@ -449,6 +480,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
     }
 
     overview = _overview(run, out, usable, images_all, choice, thumbs, notes)
+    overview["faces"] = faces_sentence(blur_faces, face_counts, len(thumbs))
     contexts_section = _contexts_section(out, context_list, bc_all, brands)
 
     from jinja2 import Environment, PackageLoader, select_autoescape

@@ -73,13 +73,25 @@ def choose_thumbnail_ids(
     return ThumbnailChoice([i for i in usable_ids if i in chosen], total, True, seed, cap)
 
 
-def make_thumbnail(path: str | Path, px: int) -> bytes | None:
-    """Decode one image and return a JPEG of at most ``px`` x ``px`` pixels (None if unreadable)."""
+def make_thumbnail(path: str | Path, px: int, blur_faces: bool = False) -> bytes | None:
+    """Decode one image and return a JPEG of at most ``px`` x ``px`` pixels (None if unreadable).
+
+    With ``blur_faces``, faces found by ``explore.report.faces`` are blurred,
+    detected on a larger decode before shrinking (``thumbnail_and_faces`` also
+    returns how many).
+    """
+    made = thumbnail_and_faces(path, px, blur_faces)
+    return None if made is None else made[0]
+
+
+def thumbnail_and_faces(path: str | Path, px: int, blur_faces: bool = False) -> tuple[bytes, int] | None:
+    """``(JPEG bytes, faces blurred)`` for one image, or None when it cannot be read."""
     from PIL import Image, ImageOps
 
     try:
         with Image.open(path) as im:
-            im.draft("RGB", (px * 2, px * 2))  # JPEG: decode at reduced scale, much faster
+            side = max(px * 2, _faces().DETECT_SIDE) if blur_faces else px * 2
+            im.draft("RGB", (side, side))  # JPEG: decode at reduced scale, much faster
             im = ImageOps.exif_transpose(im)
             if im.mode not in ("RGB", "L"):
                 im = im.convert("RGBA")
@@ -87,16 +99,30 @@ def make_thumbnail(path: str | Path, px: int) -> bytes | None:
                 background.paste(im, mask=im.getchannel("A"))
                 im = background
             im = im.convert("RGB")
+            found = 0
+            if blur_faces:
+                im, found = _faces().blur_faces(im)
             im.thumbnail((px, px), Image.Resampling.LANCZOS)
             buf = io.BytesIO()
             im.save(buf, "JPEG", quality=JPEG_QUALITY, optimize=True)
-            return buf.getvalue()
+            return buf.getvalue(), found
     except Exception:  # unreadable now (moved, damaged): the report shows a placeholder
         return None
 
 
+def _faces():
+    from explore.report import faces
+
+    return faces
+
+
 def thumbnails_for(
-    images: pd.DataFrame, ids: list[str], px: int, cache_file: Path | None = None
+    images: pd.DataFrame,
+    ids: list[str],
+    px: int,
+    cache_file: Path | None = None,
+    blur_faces: bool = False,
+    face_counts: dict[str, int] | None = None,
 ) -> dict[str, str]:
     """Base64 JPEG thumbnails for ``ids`` (image_id -> base64 text, no ``data:`` prefix).
 
@@ -105,7 +131,10 @@ def thumbnails_for(
     images : the images table (needs image_id, path, sha256).
     ids : which images.
     px : longest side in pixels.
-    cache_file : optional parquet cache keyed by sha256; read first, updated after.
+    cache_file : optional parquet cache keyed by sha256; read first, updated after
+        (use a different file with and without ``blur_faces``).
+    blur_faces : blur detected faces (``explore.report.faces``).
+    face_counts : when given, filled with image_id -> faces blurred (0 when none).
 
     Returns
     -------
@@ -115,36 +144,50 @@ def thumbnails_for(
         return {}
     rows = images.set_index("image_id").loc[ids, ["path", "sha256"]]
     cached: dict[str, bytes] = {}
+    cached_faces: dict[str, int] = {}
     if cache_file is not None and cache_file.is_file():
         try:
             table = pd.read_parquet(cache_file)
             cached = dict(zip(table["sha256"], table["jpeg"]))
+            cached_faces = dict(zip(table["sha256"], table["faces"])) if "faces" in table else {}
         except Exception:
-            cached = {}
+            cached, cached_faces = {}, {}
     out: dict[str, str] = {}
     fresh: dict[str, bytes] = {}
     todo = [(i, p, s) for i, p, s in zip(rows.index, rows["path"], rows["sha256"]) if not (s and s in cached)]
     made: dict[str, bytes | None] = {}
+    made_faces: dict[str, int] = {}
+    fresh_faces: dict[str, int] = {}
     if todo:
         # Pillow releases the GIL while decoding and resizing, so threads use every core.
         from concurrent.futures import ThreadPoolExecutor
 
         with ThreadPoolExecutor(max_workers=max(1, min(8, os.cpu_count() or 1))) as pool:
-            for (image_id, _, _), data in zip(todo, pool.map(lambda t: make_thumbnail(t[1], px), todo)):
-                made[image_id] = data
+            work = pool.map(lambda t: thumbnail_and_faces(t[1], px, blur_faces), todo)
+            for (image_id, _, _), result in zip(todo, work):
+                made[image_id] = None if result is None else result[0]
+                made_faces[image_id] = 0 if result is None else result[1]
     for image_id, sha in zip(rows.index, rows["sha256"]):
         data = cached.get(sha) if sha else None
+        count = int(cached_faces.get(sha, 0)) if data is not None else 0
         if data is None:
             data = made.get(image_id)
             if data is None:
                 continue
+            count = made_faces.get(image_id, 0)
             if sha:
                 fresh[sha] = data
+                fresh_faces[sha] = count
+        if face_counts is not None:
+            face_counts[image_id] = count
         out[image_id] = base64.b64encode(data).decode("ascii")
     if cache_file is not None and fresh:
         merged = {**cached, **fresh}
+        merged_faces = {**cached_faces, **fresh_faces}
         cache_file.parent.mkdir(parents=True, exist_ok=True)
         tmp = cache_file.with_suffix(".tmp")
-        pd.DataFrame({"sha256": list(merged), "jpeg": list(merged.values())}).to_parquet(tmp, index=False)
+        pd.DataFrame(
+            {"sha256": list(merged), "jpeg": list(merged.values()), "faces": [int(merged_faces.get(k, 0)) for k in merged]}
+        ).to_parquet(tmp, index=False)
         tmp.replace(cache_file)
     return out
