@@ -53,7 +53,15 @@ fields, or a path listed before is ``bad_row``.
 Every file that cannot be used keeps its row, with a ``status`` and a
 human-readable ``reason`` (see DEVELOPERS.md, "Images table"). One bad file
 never stops a run. Exact duplicates (same sha256 of the file bytes) are kept
-once: later copies get status ``duplicate`` and ``duplicate_of``. Visually
+once within a brand and source: later copies there get status ``duplicate``
+and ``duplicate_of``; the same photo under another brand or source is kept
+there too, since each brand and source counts what was posted to it (the
+embedding is still computed once per content). A brand's owned photo found
+again in its consumer set is a **repost**: its consumer row gets
+``repost_of`` (the owned row's id) and, by default (``reposts="exclude"``,
+study key ``images.reposts``), status ``repost``, so consumer shares describe
+what consumers posted themselves; ``repost_summary`` reports them per brand.
+Visually
 near-identical images (a 64-bit difference hash within a small Hamming
 distance) are flagged in ``near_duplicate_of`` but still used.
 
@@ -115,6 +123,7 @@ COLUMNS = [
     "reason",
     "duplicate_of",
     "near_duplicate_of",
+    "repost_of",
 ]
 _CLUTTER = {".ds_store", "thumbs.db", "desktop.ini"}
 _ROOT_DOCUMENTS = {".toml", ".csv", ".json", ".md", ".txt"}
@@ -595,6 +604,7 @@ def collect_images(
     metadata: str | Path | None = None,
     max_per_poster: int = 0,
     seed: int = 0,
+    reposts: str = "exclude",
 ) -> pd.DataFrame:
     """Find the images and build the images table (one row per file found).
 
@@ -616,6 +626,9 @@ def collect_images(
     max_per_poster : at most this many usable photos per poster within a
         brand x source (0: no cap); the rest get status ``over_poster_cap``.
     seed : seeds the choice of the photos kept under the cap.
+    reposts : ``exclude`` (a brand's owned photo re-posted in its consumer set
+        gets status ``repost``) or ``keep`` (stays ``ok``); ``repost_of`` is
+        filled either way.
 
     Returns
     -------
@@ -670,6 +683,7 @@ def collect_images(
             "reason": entry.reason,
             "duplicate_of": "",
             "near_duplicate_of": "",
+            "repost_of": "",
         }
         result = by_entry.get(id(entry))
         if result is not None:
@@ -690,7 +704,10 @@ def collect_images(
         table[name] = table[name].fillna("").astype(str)
     table["width"] = table["width"].astype("int64")
     table["height"] = table["height"].astype("int64")
+    if reposts not in ("exclude", "keep"):
+        raise ValueError(f"reposts must be 'exclude' or 'keep', got {reposts!r}")
     _flag_duplicates(table)
+    _flag_reposts(table, exclude=reposts == "exclude")
     _flag_near_duplicates(table, hashes, near_duplicate_bits)
     _cap_posters(table, max_per_poster, seed)
     return table
@@ -735,10 +752,11 @@ def _cpu_count() -> int:
 
 
 def _flag_duplicates(table: pd.DataFrame) -> None:
-    first: dict[str, str] = {}
-    first_path: dict[str, str] = {}
+    """Later copies of one content within one brand x source become ``duplicate``."""
+    first: dict[tuple, str] = {}
+    first_path: dict[tuple, str] = {}
     for i in np.flatnonzero(table["status"].to_numpy() == "ok"):
-        sha = table.at[i, "sha256"]
+        sha = (table.at[i, "brand"], table.at[i, "source"], table.at[i, "sha256"])
         if sha in first:
             table.at[i, "status"] = "duplicate"
             table.at[i, "duplicate_of"] = first[sha]
@@ -746,6 +764,59 @@ def _flag_duplicates(table: pd.DataFrame) -> None:
         else:
             first[sha] = table.at[i, "image_id"]
             first_path[sha] = table.at[i, "relpath"]
+
+
+def _flag_reposts(table: pd.DataFrame, exclude: bool) -> None:
+    """Mark consumer rows whose content is one of the same brand's owned photos."""
+    ok = table["status"] == "ok"
+    owned = table[ok & (table["source"] == "owned")]
+    first_owned = owned.drop_duplicates(["brand", "sha256"]).set_index(["brand", "sha256"])
+    for i in np.flatnonzero((ok & (table["source"] == "consumer")).to_numpy()):
+        key = (table.at[i, "brand"], table.at[i, "sha256"])
+        if key not in first_owned.index:
+            continue
+        kept = first_owned.loc[key]
+        table.at[i, "repost_of"] = kept["image_id"]
+        if exclude:
+            table.at[i, "status"] = "repost"
+            table.at[i, "reason"] = (
+                f"the brand's own photo {kept['relpath']} re-posted in its consumer set; left out "
+                "of consumer shares (study key images.reposts = 'keep' counts it)"
+            )
+
+
+def repost_summary(table: pd.DataFrame, examples: int = 3) -> pd.DataFrame:
+    """Per brand: how many consumer photos are reposts of its owned photos, with examples.
+
+    Columns: ``brand``, ``category``, ``reposts``, ``consumer_files`` (consumer
+    rows that are ``ok`` or ``repost``), ``repost_share`` (reposts /
+    consumer_files), ``excluded`` (status ``repost``: left out of consumer
+    shares), ``examples`` (up to ``examples`` consumer paths, `` | ``-separated,
+    each with the owned path it repeats). Brands without reposts have no row.
+    """
+    columns = ["brand", "category", "reposts", "consumer_files", "repost_share", "excluded", "examples"]
+    if "repost_of" not in table or not (table["repost_of"].fillna("") != "").any():
+        return pd.DataFrame(columns=columns)
+    path_of = table.set_index("image_id")["relpath"].to_dict()
+    consumer = table[(table["source"] == "consumer") & table["status"].isin(["ok", "repost"])]
+    rows = []
+    for brand, group in consumer.groupby("brand", sort=True):
+        hits = group[group["repost_of"].fillna("") != ""]
+        if not len(hits):
+            continue
+        shown = [f"{r.relpath} (= {path_of.get(r.repost_of, r.repost_of)})" for r in hits.head(examples).itertuples()]
+        rows.append(
+            dict(
+                brand=brand,
+                category=str(group["category"].iloc[0]),
+                reposts=len(hits),
+                consumer_files=len(group),
+                repost_share=len(hits) / len(group),
+                excluded=bool((hits["status"] == "repost").all()),
+                examples=" | ".join(shown),
+            )
+        )
+    return pd.DataFrame(rows, columns=columns)
 
 
 def _flag_near_duplicates(table: pd.DataFrame, hashes: dict[int, int], max_bits: int) -> None:
@@ -834,6 +905,7 @@ def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
         metadata=study.images.metadata,
         max_per_poster=study.images.max_per_poster,
         seed=study.seed,
+        reposts=getattr(study.images, "reposts", "exclude"),
     )
 
 
@@ -866,10 +938,18 @@ def summarise(table: pd.DataFrame, examples: int = 5) -> str:
     counts = table.loc[table["status"] != "ok", "status"].value_counts()
     if len(counts):
         lines[0] += " (" + ", ".join(f"{count} {kind}" for kind, count in counts.items()) + ")"
+    reposted = table["repost_of"].fillna("") != "" if "repost_of" in table else pd.Series(False, index=table.index)
+    if reposted.any():
+        brands = table.loc[reposted, "brand"].nunique()
+        excluded = int((table["status"] == "repost").sum())
+        lines.append(
+            f"{int(reposted.sum())} consumer photo(s) of {brands} brand(s) are reposts of the brand's own "
+            + ("photos (left out of consumer shares)" if excluded else "photos (kept in consumer shares)")
+        )
     near = int((table["near_duplicate_of"] != "").sum())
     if near:
         lines.append(f"{near} near-duplicate image{'s' if near != 1 else ''} flagged (still used)")
-    problems = table[~table["status"].isin(["ok", "duplicate"])]
+    problems = table[~table["status"].isin(["ok", "duplicate", "repost"])]
     for _, row in problems.head(examples).iterrows():
         lines.append(f"  {row['status']}: {row['relpath'] or row['path']}: {row['reason']}")
     if len(problems) > examples:

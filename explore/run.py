@@ -121,8 +121,15 @@ def run_study(
         summary.images_found = len(images)
         summary.images_used = int((images["status"] == "ok").sum())
         summary.images_skipped = summary.images_found - summary.images_used
+        reposts = collect.repost_summary(images)
+        for row in reposts.itertuples():
+            summary.notes.append(
+                f"collect: {row.brand}: {row.reposts} of {row.consumer_files} consumer photos are reposts of "
+                f"its own photos ({'left out of' if row.excluded else 'kept in'} consumer shares), "
+                f"e.g. {row.examples}"
+            )
         summary.tables += write_tables(
-            out, {"images": images, "skipped": collect.skipped_files(images)}
+            out, {"images": images, "skipped": collect.skipped_files(images), "reposts": reposts}
         )
         summary.notes.append(f"collect: {collect.poster_note(images)}")
 

@@ -37,12 +37,17 @@ class ImagesSettings:
         poster, posted_at and any extra columns.
     max_per_poster: at most this many usable photos per poster within each
         brand x source, a seeded sample (0, the default: no cap).
+    reposts: what to do with a brand's owned photo found again in its consumer
+        set (same file content): ``exclude`` (default: status ``repost``, so
+        consumer shares describe what consumers posted themselves) or ``keep``
+        (counted as a consumer photo too). Either way it is reported.
     """
 
     root: Path | None = None
     manifest: Path | None = None
     metadata: Path | None = None
     max_per_poster: int = 0
+    reposts: str = "exclude"
 
 
 @dataclass
@@ -248,6 +253,10 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
         )
     if images.manifest is not None and images.root is None:
         images.root = images.manifest.parent
+    if images.reposts not in ("exclude", "keep"):
+        raise StudyError(
+            f"{where}: key 'images.reposts' is '{images.reposts}'; expected 'exclude' or 'keep'"
+        )
 
     brands_raw = raw.get("brands", {})
     if not isinstance(brands_raw, dict):

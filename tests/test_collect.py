@@ -159,15 +159,14 @@ def test_own_pixel_limit_refuses_large_images(tmp_path):
 def test_exact_and_near_duplicates(tmp_path):
     root = tmp_path / "photos"
     first = save(smooth_photo(7, (320, 240)), root / "Alpha/consumer/a.jpg", quality=95)
-    (root / "Alpha/owned").mkdir(parents=True)
-    shutil.copy(first, root / "Alpha/owned/copy_of_a.jpg")
+    shutil.copy(first, root / "Alpha/consumer/copy_of_a.jpg")
     # The same picture resized and recompressed: a near-duplicate, still used.
     save(Image.open(first).resize((200, 150)), root / "Beta/consumer/a_small.jpg", quality=70)
     save(smooth_photo(8, (320, 240)), root / "Beta/consumer/other.jpg", quality=95)
     table = collect_images(root, progress=False)
 
     a = row(table, "Alpha/consumer/a.jpg")
-    copy = row(table, "Alpha/owned/copy_of_a.jpg")
+    copy = row(table, "Alpha/consumer/copy_of_a.jpg")
     assert a["status"] == "ok" and copy["status"] == "duplicate"
     assert copy["duplicate_of"] == a["image_id"] and copy["sha256"] == a["sha256"]
     assert "Alpha/consumer/a.jpg" in copy["reason"]
@@ -175,6 +174,94 @@ def test_exact_and_near_duplicates(tmp_path):
     assert small["status"] == "ok" and small["near_duplicate_of"] == a["image_id"]
     assert row(table, "Beta/consumer/other.jpg")["near_duplicate_of"] == ""
     assert "1 duplicate" in summarise(table) and "1 near-duplicate" in summarise(table)
+
+
+STUDY_WITH_REPOSTS = """
+name = "reposts"
+[images]
+root = "photos"
+{extra}
+[brands]
+Alpha = "drinks"
+Beta = "drinks"
+"""
+
+
+def reposts_study(tmp_path, extra=""):
+    """Alpha and Beta each post the same photo (shared.jpg) in their consumer sets;
+    Alpha's owned launch.jpg is re-posted in Alpha's consumer set; Alpha's consumer
+    set also holds one exact copy of its own photo (kept once)."""
+    root = tmp_path / "photos"
+    shared = save(smooth_photo(21, (240, 180)), root / "Alpha/consumer/shared.jpg", quality=90)
+    (root / "Beta/consumer").mkdir(parents=True)
+    shutil.copy(shared, root / "Beta/consumer/shared_too.jpg")
+    launch = save(smooth_photo(22, (240, 180)), root / "Alpha/owned/launch.jpg", quality=90)
+    shutil.copy(launch, root / "Alpha/consumer/fan_repost.jpg")
+    own = save(smooth_photo(23, (240, 180)), root / "Alpha/consumer/picnic.jpg", quality=90)
+    shutil.copy(own, root / "Alpha/consumer/picnic_again.jpg")
+    save(smooth_photo(24, (240, 180)), root / "Alpha/owned/studio.jpg", quality=90)
+    save(smooth_photo(25, (240, 180)), root / "Beta/owned/ad.jpg", quality=90)
+    study_file = tmp_path / "study.toml"
+    study_file.write_text(STUDY_WITH_REPOSTS.format(extra=extra), encoding="utf-8")
+    from explore.study import load_study
+
+    return load_study(study_file)
+
+
+def used_counts(table):
+    ok = table[table["status"] == "ok"]
+    return {k: int(v) for k, v in ok.groupby(["brand", "source"]).size().items()}
+
+
+def test_photo_under_two_brands_counts_for_both_and_reposts_are_reported(tmp_path):
+    """Rules (issue 16): an exact copy counts once within a brand x source and in
+    every brand/source where it was posted; a brand's owned photo in its consumer
+    set is a repost, reported, and left out of consumer counts by default.
+    Expected counts by hand from the files written above."""
+    study = reposts_study(tmp_path)
+    table = collect.collect_study_images(study, progress=False)
+    assert used_counts(table) == {
+        ("Alpha", "consumer"): 2,  # shared, picnic (picnic_again = duplicate, fan_repost = repost)
+        ("Alpha", "owned"): 2,  # launch, studio
+        ("Beta", "consumer"): 1,  # shared_too: same content as Alpha's, kept for Beta
+        ("Beta", "owned"): 1,
+    }
+    assert row(table, "Beta/consumer/shared_too.jpg")["status"] == "ok"
+    assert row(table, "Alpha/consumer/picnic_again.jpg")["status"] == "duplicate"
+    repost = row(table, "Alpha/consumer/fan_repost.jpg")
+    assert repost["status"] == "repost"
+    assert repost["repost_of"] == row(table, "Alpha/owned/launch.jpg")["image_id"]
+    assert "Alpha/owned/launch.jpg" in repost["reason"]
+    # The owned photo itself is untouched; the shared photo is no repost (other brand).
+    assert row(table, "Alpha/owned/launch.jpg")["status"] == "ok"
+    assert row(table, "Beta/consumer/shared_too.jpg")["repost_of"] == ""
+
+    report = collect.repost_summary(table)
+    assert report[["brand", "reposts", "consumer_files", "excluded"]].to_dict("records") == [
+        dict(brand="Alpha", reposts=1, consumer_files=3, excluded=True)
+    ]
+    assert report["repost_share"].iloc[0] == pytest.approx(1 / 3)
+    assert "Alpha/consumer/fan_repost.jpg (= Alpha/owned/launch.jpg)" in report["examples"].iloc[0]
+    assert "1 consumer photo(s) of 1 brand(s) are reposts" in summarise(table)
+    # Embedding stays once per content: 5 distinct contents among 6 used rows.
+    assert table.loc[table["status"] == "ok", "sha256"].nunique() == 5
+
+
+def test_reposts_kept_when_the_study_says_so(tmp_path):
+    study = reposts_study(tmp_path, extra='reposts = "keep"')
+    table = collect.collect_study_images(study, progress=False)
+    assert used_counts(table)[("Alpha", "consumer")] == 3
+    repost = row(table, "Alpha/consumer/fan_repost.jpg")
+    assert repost["status"] == "ok" and repost["repost_of"] != ""
+    report = collect.repost_summary(table)
+    assert report["reposts"].tolist() == [1] and report["excluded"].tolist() == [False]
+
+
+def test_reposts_setting_is_checked(tmp_path):
+    from explore.study import StudyError
+
+    with pytest.raises(StudyError, match="images.reposts"):
+        reposts_study(tmp_path, extra='reposts = "drop"')
 
 
 def test_difference_hash_follows_its_definition():
