@@ -62,8 +62,10 @@ again in its consumer set is a **repost**: its consumer row gets
 study key ``images.reposts``), status ``repost``, so consumer shares describe
 what consumers posted themselves; ``repost_summary`` reports them per brand.
 Visually
-near-identical images (a 64-bit difference hash within a small Hamming
-distance) are flagged in ``near_duplicate_of`` but still used.
+near-identical images within one brand x source (a 64-bit difference hash of
+the content box, ``content_hash``, within ``NEAR_DUPLICATE_BITS``) are
+proposed in ``near_duplicate_of``; ``explore.duplicates`` confirms them with
+the image vectors after embed.
 
 Decoding (``open_rgb``) reads JPEG (and MPO), PNG, WebP, GIF (first frame),
 BMP and TIFF, applies the EXIF orientation, and converts palette, CMYK, 16-bit
@@ -98,10 +100,11 @@ FORMATS = ("JPEG", "PNG", "WEBP", "GIF", "BMP", "TIFF")
 #: defaults), so a 108-megapixel phone photo passes and a crafted bomb does not.
 MAX_PIXELS = 178_956_970
 
-#: Near-duplicate threshold: difference hashes (64 bits) at most this many bits
-#: apart are called near-identical. Small values such as 4-5 of 64 bits are
-#: common practice for dHash (Krawetz, "Kind of Like That", 2013).
-NEAR_DUPLICATE_BITS = 4
+#: Near-duplicate proposal threshold: content hashes (64 bits) at most this
+#: many bits apart, within one brand x source, are proposed as near-identical;
+#: ``explore.duplicates`` confirms them with the image vectors. Chosen on an
+#: outside set with known duplicates (benchmarks/near_duplicates.py).
+NEAR_DUPLICATE_BITS = 14
 
 SOURCES = ("consumer", "owned")
 MANIFEST_REQUIRED = ("path", "brand", "source")
@@ -314,6 +317,41 @@ def difference_hash(image: Image.Image) -> int:
     grey = np.asarray(image.convert("L").resize((9, 8), Image.Resampling.BOX), dtype=np.int16)
     bits = (grey[:, :-1] > grey[:, 1:]).ravel()
     return int(np.packbits(bits).view(">u8")[0])
+
+
+#: A picture's border counts as a uniform background when at least this share
+#: of its border pixels are within ``BACKGROUND_TOLERANCE`` grey levels of the
+#: border's median (studio shots, clip art and product photos on white).
+BACKGROUND_BORDER_SHARE = 0.8
+BACKGROUND_TOLERANCE = 12
+
+
+def content_box(image: Image.Image) -> tuple[int, int, int, int] | None:
+    """Bounding box (left, top, right, bottom) of what is not uniform background, or None.
+
+    None when the border is not a uniform background (an ordinary photo) or
+    when nothing but background is found. Used so that near-duplicate hashes
+    describe the object, not the white space around it: two unrelated objects
+    on white otherwise share most of their difference-hash bits.
+    """
+    grey = np.asarray(image.convert("L"), dtype=np.int16)
+    if grey.shape[0] < 4 or grey.shape[1] < 4:
+        return None
+    border = np.concatenate([grey[0], grey[-1], grey[1:-1, 0], grey[1:-1, -1]])
+    background = np.median(border)
+    if np.mean(np.abs(border - background) <= BACKGROUND_TOLERANCE) < BACKGROUND_BORDER_SHARE:
+        return None
+    content = np.abs(grey - background) > BACKGROUND_TOLERANCE
+    rows, cols = np.flatnonzero(content.any(axis=1)), np.flatnonzero(content.any(axis=0))
+    if len(rows) < 2 or len(cols) < 2:
+        return None
+    return int(cols[0]), int(rows[0]), int(cols[-1]) + 1, int(rows[-1]) + 1
+
+
+def content_hash(image: Image.Image) -> int:
+    """Difference hash of the picture with any uniform background border cropped away."""
+    box = content_box(image)
+    return difference_hash(image.crop(box) if box else image)
 
 
 # --------------------------------------------------------------------------
@@ -721,7 +759,7 @@ def _read_one(entry: _Entry, max_pixels: int):
         # An eighth-scale JPEG decode is enough for the hash and still reads
         # (and so checks) the whole compressed stream.
         image, size = _decode(data, 64, max_pixels)
-        return sha, size, difference_hash(image)
+        return sha, size, content_hash(image)
     except ImageProblem as problem:
         return problem
     except Exception as exc:  # one bad file never stops a run
@@ -820,15 +858,24 @@ def repost_summary(table: pd.DataFrame, examples: int = 3) -> pd.DataFrame:
 
 
 def _flag_near_duplicates(table: pd.DataFrame, hashes: dict[int, int], max_bits: int) -> None:
-    """Point each used image at the first earlier used image within ``max_bits`` of its dHash."""
-    rows = [i for i in np.flatnonzero(table["status"].to_numpy() == "ok") if i in hashes]
-    if len(rows) < 2 or max_bits < 0:
+    """Point each used image at the first earlier used image of its brand x source within ``max_bits``.
+
+    These are proposals: ``explore.duplicates`` confirms them with the image vectors after embed.
+    """
+    used = [i for i in np.flatnonzero(table["status"].to_numpy() == "ok") if i in hashes]
+    if len(used) < 2 or max_bits < 0:
         return
-    values = np.array([hashes[i] for i in rows], dtype=np.uint64)
-    partner = near_duplicate_partners(values, max_bits)
     ids = table["image_id"].to_numpy()
-    for k in np.flatnonzero(partner >= 0):
-        table.at[rows[k], "near_duplicate_of"] = ids[rows[partner[k]]]
+    cells: dict[tuple, list[int]] = {}
+    for i in used:
+        cells.setdefault((table.at[i, "brand"], table.at[i, "source"]), []).append(i)
+    for rows in cells.values():
+        if len(rows) < 2:
+            continue
+        values = np.array([hashes[i] for i in rows], dtype=np.uint64)
+        partner = near_duplicate_partners(values, max_bits)
+        for k in np.flatnonzero(partner >= 0):
+            table.at[rows[k], "near_duplicate_of"] = ids[rows[partner[k]]]
 
 
 def near_duplicate_partners(values: np.ndarray, max_bits: int) -> np.ndarray:
@@ -948,7 +995,10 @@ def summarise(table: pd.DataFrame, examples: int = 5) -> str:
         )
     near = int((table["near_duplicate_of"] != "").sum())
     if near:
-        lines.append(f"{near} near-duplicate image{'s' if near != 1 else ''} flagged (still used)")
+        lines.append(
+            f"{near} near-duplicate image{'s' if near != 1 else ''} proposed by the content hash "
+            "(confirmed by the image vectors after embed)"
+        )
     problems = table[~table["status"].isin(["ok", "duplicate", "repost"])]
     for _, row in problems.head(examples).iterrows():
         lines.append(f"  {row['status']}: {row['relpath'] or row['path']}: {row['reason']}")

@@ -150,6 +150,17 @@ def run_study(
         summary.images_embedded = stats.embedded
         log(stats.describe())
 
+    with timer("near-duplicates"):
+        from explore import duplicates
+
+        images, embeddings, near_notes = duplicates.confirm_near_duplicates(
+            images, embeddings, exclude=getattr(study.images, "near_duplicates", "exclude") == "exclude"
+        )
+        summary.notes += near_notes
+        summary.images_used = int((images["status"] == "ok").sum())
+        summary.images_skipped = summary.images_found - summary.images_used
+        write_tables(out, {"images": images, "skipped": collect.skipped_files(images)})
+
     # The stages below run in data-flow order; each writes its tables with
     # write_tables(out, ...) and adds one-line notes for the run summary.
 

@@ -41,6 +41,10 @@ class ImagesSettings:
         set (same file content): ``exclude`` (default: status ``repost``, so
         consumer shares describe what consumers posted themselves) or ``keep``
         (counted as a consumer photo too). Either way it is reported.
+    near_duplicates: a near-identical picture in the same brand and source
+        (confirmed by the image vectors, ``explore/duplicates.py``): ``exclude``
+        (default: counted once, later copies get status ``near_duplicate``) or
+        ``keep`` (flag only).
     """
 
     root: Path | None = None
@@ -48,6 +52,7 @@ class ImagesSettings:
     metadata: Path | None = None
     max_per_poster: int = 0
     reposts: str = "exclude"
+    near_duplicates: str = "exclude"
 
 
 @dataclass
@@ -256,6 +261,10 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
     if images.reposts not in ("exclude", "keep"):
         raise StudyError(
             f"{where}: key 'images.reposts' is '{images.reposts}'; expected 'exclude' or 'keep'"
+        )
+    if images.near_duplicates not in ("exclude", "keep"):
+        raise StudyError(
+            f"{where}: key 'images.near_duplicates' is '{images.near_duplicates}'; expected 'exclude' or 'keep'"
         )
 
     brands_raw = raw.get("brands", {})

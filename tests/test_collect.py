@@ -161,7 +161,7 @@ def test_exact_and_near_duplicates(tmp_path):
     first = save(smooth_photo(7, (320, 240)), root / "Alpha/consumer/a.jpg", quality=95)
     shutil.copy(first, root / "Alpha/consumer/copy_of_a.jpg")
     # The same picture resized and recompressed: a near-duplicate, still used.
-    save(Image.open(first).resize((200, 150)), root / "Beta/consumer/a_small.jpg", quality=70)
+    save(Image.open(first).resize((200, 150)), root / "Alpha/consumer/a_small.jpg", quality=70)
     save(smooth_photo(8, (320, 240)), root / "Beta/consumer/other.jpg", quality=95)
     table = collect_images(root, progress=False)
 
@@ -170,7 +170,7 @@ def test_exact_and_near_duplicates(tmp_path):
     assert a["status"] == "ok" and copy["status"] == "duplicate"
     assert copy["duplicate_of"] == a["image_id"] and copy["sha256"] == a["sha256"]
     assert "Alpha/consumer/a.jpg" in copy["reason"]
-    small = row(table, "Beta/consumer/a_small.jpg")
+    small = row(table, "Alpha/consumer/a_small.jpg")
     assert small["status"] == "ok" and small["near_duplicate_of"] == a["image_id"]
     assert row(table, "Beta/consumer/other.jpg")["near_duplicate_of"] == ""
     assert "1 duplicate" in summarise(table) and "1 near-duplicate" in summarise(table)
