@@ -608,6 +608,7 @@ def labelled_tree(tmp_path_factory):
     pd.DataFrame(rows, columns=["image", "attribute", "label"]).to_csv(root / "labels.csv", index=False)
     (root / "study.toml").write_text(
         'name = "labelled"\noutput = "out"\n[images]\nroot = "images"\n'
+        'near_duplicates = "keep"\n'  # the photos are deliberate variants of five photos
         '[scoring]\nbootstrap_samples = 100\n'
         '[[attribute]]\nname = "animal"\npositive = ["an animal", "a pet cat"]\n'
         'negative = ["an object", "a landscape"]\n',
