@@ -7,6 +7,7 @@ the commands that need them, so ``explore --help`` answers at once.
 from __future__ import annotations
 
 import argparse
+import errno
 import sys
 from pathlib import Path
 
@@ -285,31 +286,45 @@ def cmd_fetch_model(args) -> int:
 
 def cmd_embed(args) -> int:
     from explore import collect, embed
-    from explore.encoders import load_encoder
-    from explore.run import write_tables
-    from explore.study import DEFAULT_CLIP_MODEL, DEFAULT_CLIP_PRETRAINED
     from explore.cache import check_not_busy
+    from explore.encoders import load_encoder
+    from explore.output import OutputLock, Staging, write_tables
+    from explore.study import DEFAULT_CLIP_MODEL, DEFAULT_CLIP_PRETRAINED
 
-    check_not_busy(args.out / "cache")  # refuse at once, not after collecting and loading a model
     source = args.source
-    if source.suffix.lower() == ".csv":
-        images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet)
-    else:
-        images = collect.collect_images(root=source, progress=not args.quiet)
-    print(collect.summarise(images))
-    encoder, notice = load_encoder(
-        args.encoder or "auto",
-        model=args.model or DEFAULT_CLIP_MODEL,
-        pretrained=args.pretrained or DEFAULT_CLIP_PRETRAINED,
-        weights=args.weights,
-    )
-    if notice:
-        print(notice)
-    _, stats = embed.embed_table(
-        images, encoder, cache_dir=args.out / "cache", batch_size=args.batch_size, progress=not args.quiet
-    )
-    print(stats.describe())
-    write_tables(args.out, {"images": images, "skipped": collect.skipped_files(images)})
+    if not source.exists():
+        raise FileNotFoundError(f"{source}: not found (expected an images folder or a manifest .csv)")
+    with OutputLock(args.out, "embed") as lock:
+        for note in lock.notes:
+            print(note)
+        check_not_busy(args.out / "cache")  # refuse at once, not after collecting and loading a model
+        staging = Staging(args.out, lock.run_id)
+        try:
+            folder = staging.create()
+            if source.suffix.lower() == ".csv":
+                images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet)
+            else:
+                images = collect.collect_images(root=source, progress=not args.quiet)
+            print(collect.summarise(images))
+            encoder, notice = load_encoder(
+                args.encoder or "auto",
+                model=args.model or DEFAULT_CLIP_MODEL,
+                pretrained=args.pretrained or DEFAULT_CLIP_PRETRAINED,
+                weights=args.weights,
+            )
+            if notice:
+                print(notice)
+            _, stats = embed.embed_table(
+                images, encoder, cache_dir=args.out / "cache", batch_size=args.batch_size, progress=not args.quiet
+            )
+            print(stats.describe())
+            for note in stats.notes:
+                print(f"embed: {note}")
+            write_tables(folder, {"images": images, "skipped": collect.skipped_files(images)})
+            staging.publish(remove_previous_tables=False)
+        except BaseException:
+            staging.discard()
+            raise
     print(f"images table: {args.out / 'images.csv'}")
     return 0
 
@@ -322,6 +337,7 @@ def _run(study_path: Path, args) -> int:
     summary = run_study(study, encoder_name=args.encoder, weights=args.weights,
                         labels_path=getattr(args, "labels", None), progress=not args.quiet)
     print(f"study: {summary.study}")
+    print(f"run: {summary.run_id}")
     print(f"encoder: {summary.encoder_id}")
     print(
         f"images: {summary.images_found} found, {summary.images_used} used, "
@@ -409,15 +425,31 @@ def cmd_label(args) -> int:
 
 # --- report (explore/report/) -------------------------------------------------------
 def cmd_report(args) -> int:
-    from explore.report import ReportError, write_report
-    from explore.study import load_study
+    from explore.output import OutputLock, check_one_run
+    from explore.report import REPORT_NAME, ReportError, write_report
+    from explore.study import check_report_settings, load_study
 
+    study = None
+    if args.study.is_dir():
+        folder = args.study
+    else:
+        study = load_study(args.study)
+        check_report_settings(study.report, str(args.study))
+        folder = study.output
+    if not Path(folder).is_dir():
+        print(f"explore: error: {folder}: output folder not found; run the study first (explore run STUDY)",
+              file=sys.stderr)
+        return 2
     try:
-        if args.study.is_dir():
-            path = write_report(args.study)
-        else:
-            study = load_study(args.study)
-            path = write_report(study.output, study)
+        with OutputLock(folder, "report") as lock:
+            for note in lock.notes:
+                print(note)
+            check_one_run(folder)  # never a report from tables of different runs
+            try:
+                path = write_report(folder, study)
+            except BaseException:
+                (Path(folder) / f"{REPORT_NAME}.tmp").unlink(missing_ok=True)
+                raise
     except ReportError as exc:
         print(f"explore: error: {exc}", file=sys.stderr)
         return 2
@@ -426,10 +458,26 @@ def cmd_report(args) -> int:
 # --- end report -----------------------------------------------------------------------
 
 
+def os_error_line(exc: OSError) -> str:
+    """``PATH: reason`` for an OSError (our own FileNotFoundError messages already name the path)."""
+    if exc.filename is None:
+        return " ".join(str(exc).split())
+    where = str(exc.filename)
+    if exc.filename2 is not None:
+        where += f" -> {exc.filename2}"
+    reason = exc.strerror or str(exc)
+    if exc.errno == errno.ENOSPC:
+        reason += "; free some space (the previous results are unchanged)"
+    elif exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+        reason += "; choose a folder you can write to"
+    return f"{where}: {reason}"
+
+
 def main(argv: list[str] | None = None) -> int:
     from explore.cache import CacheError  # includes CacheBusy (another run holds the cache)
     from explore.embed import EmbedError
     from explore.encoders.base import EncoderUnavailable
+    from explore.output import OutputError  # includes OutputBusy (another command holds the folder)
     from explore.study import StudyError
 
     parser = build_parser()
@@ -439,8 +487,11 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     try:
         return args.func(args)
-    except (StudyError, EncoderUnavailable, FileNotFoundError, CacheError, EmbedError) as exc:
+    except (StudyError, EncoderUnavailable, CacheError, EmbedError, OutputError) as exc:
         print(f"explore: error: {exc}", file=sys.stderr)
+        return 2
+    except OSError as exc:  # the environment: permissions, read-only or full disk, a file in the way
+        print(f"explore: error: {os_error_line(exc)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("explore: interrupted; what was cached so far is kept", file=sys.stderr)

@@ -136,10 +136,17 @@ def embed_table(
             start = time.perf_counter()
             try:
                 _embed_into(cache, [(s, path_of[s]) for s in todo], encoder, batch_size, progress, streams)
+            except BaseException:
+                try:
+                    cache.compact()  # merge what was written; never hide the first error (e.g. a full disk)
+                except OSError:
+                    pass
+                raise
+            else:
+                cache.compact()
             finally:
                 stats.embedded = len(todo) - len(cache.missing(todo))
                 stats.seconds = time.perf_counter() - start
-                cache.compact()
         cluster, joint = cache.get(shas)
     return Embeddings(image_ids=image_ids, encoder_id=encoder.id, cluster=cluster, joint=joint), stats
 

@@ -671,7 +671,8 @@ def _overview(run: dict, out: OutputFolder, usable: pd.DataFrame, images_all: pd
         "thumbnails_sampled": choice.sampled,
         "n_thumbs": len(thumbs),
         "tables": sorted(n for n in out.tables if n not in PER_IMAGE_TABLES),
-        "folder": str(out.folder),
+        "folder": str(run.get("output") or out.folder),  # a run builds its report in a staging folder
+        "run_id": str(run.get("run_id") or ""),
     }
 
 

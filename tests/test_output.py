@@ -1,0 +1,177 @@
+"""The output folder holds one complete run, whatever happens (real processes, no mocks).
+
+The scenarios are in tests/fault_kit.py (also printed as a table by
+tests/fault_table.py). Each starts ``explore`` as its own process on a tiny
+generated study with the bundled encoder.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+import fault_kit as kit
+
+sys.path.insert(0, str(kit.REPO))
+
+
+@pytest.fixture(scope="module")
+def complete(tmp_path_factory):
+    """A study with one complete run whose second run was refused while the first was paused."""
+    work = tmp_path_factory.mktemp("complete")
+    study = kit.make_tiny_study(work)
+    first = kit.run("run", study, cwd=work)
+    assert first.returncode == 0, first.stdout + first.stderr
+    return study, work / "out"
+
+
+def test_two_runs_at_once_the_second_is_refused_before_writing(complete):
+    study, out = complete
+    outcome = kit.concurrent_runs(study, out)
+    assert outcome.status == 2
+    lines = outcome.message.split(" | ")
+    assert len(lines) == 1 and lines[0].startswith("explore: error: ")
+    assert "in use by another explore run (process" in lines[0] and "kill " in lines[0]
+    assert "Traceback" not in outcome.message
+    assert outcome.intact  # the refused run changed nothing in the folder
+    assert outcome.seconds < 10
+    assert outcome.one_run == "" and outcome.leftovers == []
+
+
+@pytest.mark.parametrize("boundary", ["collect", "embed", "attributes", "report"])
+def test_kill_at_a_stage_boundary_leaves_the_previous_run(complete, boundary):
+    study, out = complete
+    previous = kit.run_id(out)
+    outcome = kit.kill_at(study, out, boundary)
+    assert outcome.intact, "a killed run changed the published results"
+    assert outcome.one_run == ""
+    assert kit.run_id(out) == previous
+    # The next command says what happened and cleans up after the killed run.
+    assert "was stopped before it finished" in outcome.next_note
+    assert "did not finish; its partial outputs were removed" in outcome.next_note
+    assert outcome.leftovers == []
+
+
+def test_kill_while_publishing_is_completed_by_the_next_command(tmp_path):
+    """A process killed half way through moving a staged run into place (a small script, no model)."""
+    out = tmp_path / "out"
+    script = f"""
+import sys; sys.path.insert(0, {str(kit.REPO)!r})
+import json, pandas as pd
+from pathlib import Path
+from explore.output import OutputLock, Staging, write_tables
+out = Path({str(out)!r})
+with OutputLock(out, "run") as lock:
+    staging = Staging(out, lock.run_id)
+    folder = staging.create()
+    names = write_tables(folder, {{f"t{{i}}": pd.DataFrame({{"x": [i]}}) for i in range(6)}})
+    (folder / "run.json").write_text(json.dumps({{"run_id": lock.run_id, "tables": names}}))
+    (folder / "report.html").write_text('<meta name="explore-run-id" content="' + lock.run_id + '">')
+    staging.publish()
+"""
+    first = subprocess.run([sys.executable, "-c", script], env=kit.env(), capture_output=True, text=True)
+    assert first.returncode == 0, first.stderr
+    first_id = kit.run_id(out)
+    proc = subprocess.Popen([sys.executable, "-c", script], env=kit.env("publish"), stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    kit.wait_stopped(proc)
+    kit.kill9(proc)
+    assert (out / ".publishing").is_file()
+    from explore.output import OutputLock, check_one_run
+
+    with OutputLock(out, "report") as lock:  # what every command does first
+        notes = lock.notes
+    assert any("the move has now been completed" in n for n in notes)
+    assert any("was stopped before it finished" in n for n in notes)
+    check_one_run(out)
+    assert kit.run_id(out) != first_id
+    assert kit.one_run(out) == ""
+    assert kit.leftovers(out) == []
+
+
+def test_report_refuses_tables_of_different_runs(complete, tmp_path):
+    study, out = complete
+    copy = kit.copy_study(study.parent, tmp_path / "mixed")
+    from explore.output import write_tables
+
+    write_tables(copy.parent / "out", {"attribute_definitions": pd.DataFrame({"attribute": ["x"]})},
+                 run_id="20000101T000000Z-000000")
+    done = kit.run("report", copy, cwd=copy.parent)
+    assert done.returncode == 2
+    assert "attribute_definitions.parquet: written by run 20000101T000000Z-000000" in done.stderr
+    assert "mixes results of different runs" in done.stderr and "Traceback" not in done.stderr
+
+
+def test_output_path_that_is_a_file(complete, tmp_path):
+    study, _ = complete
+    outcome = kit.output_is_file(tmp_path, study.parent)
+    assert outcome.status == 2 and "Traceback" not in outcome.message
+    assert outcome.message.count("explore: error:") == 1
+    assert "key 'output'" in outcome.message and "is a file" in outcome.message
+    assert outcome.intact
+
+
+@pytest.mark.parametrize(
+    "line, expected",
+    [
+        ("[report]\nthumbnail_px = 5", "key 'report.thumbnail_px' is 5; expected a size between 16 and 512"),
+        ("[report]\nmax_thumbnails = -1", "key 'report.max_thumbnails' is -1; expected 0 or more"),
+        ('[contexts]\nvocabulary = "nope.txt"', "key 'contexts.vocabulary': vocabulary file"),
+    ],
+)
+def test_bad_settings_fail_before_collect(complete, tmp_path, line, expected):
+    study, _ = complete
+    outcome = kit.bad_setting(tmp_path, study.parent, line, "bad setting")
+    assert outcome.status == 2 and outcome.message.count("explore: error:") == 1
+    assert expected in outcome.message and "study.toml" in outcome.message
+    assert outcome.seconds < 10  # no images read, no model loaded (about 1 s of imports on an idle machine)
+    assert outcome.intact
+
+
+needs_mount = pytest.mark.skipif(bool(kit.can_mount()), reason=kit.can_mount() or "mounts work")
+
+
+@needs_mount
+def test_read_only_output_folder(complete, tmp_path):
+    study, _ = complete
+    outcome = kit.readonly_output(tmp_path, study.parent)
+    assert outcome.status == 2, outcome.message
+    assert outcome.message.count("explore: error:") == 1 and "Traceback" not in outcome.message
+    assert "Read-only file system" in outcome.message and "/out/lock" in outcome.message
+    assert outcome.intact
+
+
+@needs_mount
+def test_read_only_cache_folder(complete, tmp_path):
+    study, _ = complete
+    outcome = kit.readonly_cache(tmp_path, study.parent)
+    assert outcome.status == 2, outcome.message
+    assert outcome.message.count("explore: error:") == 1 and "Traceback" not in outcome.message
+    assert "/out/cache/" in outcome.message and "Read-only file system" in outcome.message
+    assert outcome.intact and outcome.leftovers == []
+    lock = json.loads((tmp_path / "rocache" / "out" / "lock").read_text())
+    assert lock["state"] == "failed"  # the next command says so
+
+
+@needs_mount
+def test_full_disk(complete, tmp_path):
+    study, _ = complete
+    outcome = kit.full_disk(tmp_path, study.parent)
+    assert outcome.status == 2, outcome.message
+    assert outcome.message.count("explore: error:") == 1 and "Traceback" not in outcome.message
+    assert "No space left on device" in outcome.message
+    assert outcome.intact and outcome.leftovers == []
+    assert outcome.one_run == "", outcome.one_run  # after freeing space the next run completes
+
+
+def test_os_error_line_names_the_path():
+    from explore.cli import os_error_line
+
+    line = os_error_line(OSError(28, os.strerror(28), "/x/y.csv"))
+    assert line.startswith("/x/y.csv: No space left on device")
+    assert os_error_line(FileNotFoundError("/x: labels file not found")) == "/x: labels file not found"
