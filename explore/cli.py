@@ -16,6 +16,13 @@ from explore import __version__
 DEMO_STUDY = Path(__file__).resolve().parent.parent / "demo_images" / "study.toml"
 
 
+def say(*parts, file=None) -> None:
+    """print, with control and bidi characters in names made visible (``explore.printable``)."""
+    from explore.printable import printable
+
+    print(printable(" ".join(str(p) for p in parts), keep_newlines=True), file=file or sys.stdout)
+
+
 def _add_encoder_options(p: argparse.ArgumentParser) -> None:
     p.add_argument(
         "--encoder",
@@ -296,7 +303,7 @@ def cmd_embed(args) -> int:
         raise FileNotFoundError(f"{source}: not found (expected an images folder or a manifest .csv)")
     with OutputLock(args.out, "embed") as lock:
         for note in lock.notes:
-            print(note)
+            say(note)
         check_not_busy(args.out / "cache")  # refuse at once, not after collecting and loading a model
         staging = Staging(args.out, lock.run_id)
         try:
@@ -305,7 +312,7 @@ def cmd_embed(args) -> int:
                 images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet)
             else:
                 images = collect.collect_images(root=source, progress=not args.quiet)
-            print(collect.summarise(images))
+            say(collect.summarise(images))
             encoder, notice = load_encoder(
                 args.encoder or "auto",
                 model=args.model or DEFAULT_CLIP_MODEL,
@@ -313,19 +320,19 @@ def cmd_embed(args) -> int:
                 weights=args.weights,
             )
             if notice:
-                print(notice)
+                say(notice)
             _, stats = embed.embed_table(
                 images, encoder, cache_dir=args.out / "cache", batch_size=args.batch_size, progress=not args.quiet
             )
-            print(stats.describe())
+            say(stats.describe())
             for note in stats.notes:
-                print(f"embed: {note}")
+                say(f"embed: {note}")
             write_tables(folder, {"images": images, "skipped": collect.skipped_files(images)})
             staging.publish(remove_previous_tables=False)
         except BaseException:
             staging.discard()
             raise
-    print(f"images table: {args.out / 'images.csv'}")
+    say(f"images table: {args.out / 'images.csv'}")
     return 0
 
 
@@ -334,21 +341,23 @@ def _run(study_path: Path, args) -> int:
     from explore.study import load_study
 
     study = _with_extra_attributes(load_study(study_path), args.attribute)
-    summary = run_study(study, encoder_name=args.encoder, weights=args.weights,
-                        labels_path=getattr(args, "labels", None), progress=not args.quiet)
-    print(f"study: {summary.study}")
-    print(f"run: {summary.run_id}")
-    print(f"encoder: {summary.encoder_id}")
-    print(
+    summary = run_study(
+        study, encoder_name=args.encoder, weights=args.weights, labels_path=getattr(args, "labels", None),
+        progress=not args.quiet, log=say,
+    )
+    say(f"study: {summary.study}")
+    say(f"run: {summary.run_id}")
+    say(f"encoder: {summary.encoder_id}")
+    say(
         f"images: {summary.images_found} found, {summary.images_used} used, "
         f"{summary.images_skipped} skipped, {summary.images_embedded} embedded this run"
     )
-    print("time per stage: " + ", ".join(f"{k} {v:.1f}s" for k, v in summary.stage_seconds.items()))
+    say("time per stage: " + ", ".join(f"{k} {v:.1f}s" for k, v in summary.stage_seconds.items()))
     for note in summary.notes:
-        print(note)
-    print(f"outputs: {summary.output}")
+        say(note)
+    say(f"outputs: {summary.output}")
     if summary.report:
-        print(f"report: {summary.report}")
+        say(f"report: {summary.report}")
     return 0
 
 
@@ -373,11 +382,12 @@ def cmd_check(args) -> int:
         save_threshold=args.save_threshold,
         save_probe=args.save_probe,
         progress=not args.quiet,
+        log=say,
     )
-    print(f"encoder: {results[0].encoder_id}")
+    say(f"encoder: {results[0].encoder_id}")
     for result in results:
-        print(result.describe())
-    print(f"tables: {study.output / 'attribute_check.csv'} (and _reliability, _descriptions)")
+        say(result.describe())
+    say(f"tables: {study.output / 'attribute_check.csv'} (and _reliability, _descriptions)")
     return 0
 
 
@@ -387,9 +397,9 @@ def cmd_init(args) -> int:
 
     path = write_starter_study(args.folder, args.out, force=args.force)
     brands = {b: s for b, s in find_brands(args.folder).items() if s}
-    print(f"study: {path}")
-    print(f"brands: {len(brands)} ({', '.join(brands)})")
-    print(f"next: explore run {path}")
+    say(f"study: {path}")
+    say(f"brands: {len(brands)} ({', '.join(brands)})")
+    say(f"next: explore run {path}")
     return 0
 # --- end init -----------------------------------------------------------------------
 
@@ -437,13 +447,13 @@ def cmd_report(args) -> int:
         check_report_settings(study.report, str(args.study))
         folder = study.output
     if not Path(folder).is_dir():
-        print(f"explore: error: {folder}: output folder not found; run the study first (explore run STUDY)",
+        say(f"explore: error: {folder}: output folder not found; run the study first (explore run STUDY)",
               file=sys.stderr)
         return 2
     try:
         with OutputLock(folder, "report") as lock:
             for note in lock.notes:
-                print(note)
+                say(note)
             check_one_run(folder)  # never a report from tables of different runs
             try:
                 path = write_report(folder, study)
@@ -451,9 +461,9 @@ def cmd_report(args) -> int:
                 (Path(folder) / f"{REPORT_NAME}.tmp").unlink(missing_ok=True)
                 raise
     except ReportError as exc:
-        print(f"explore: error: {exc}", file=sys.stderr)
+        say(f"explore: error: {exc}", file=sys.stderr)
         return 2
-    print(f"report: {path}")
+    say(f"report: {path}")
     return 0
 # --- end report -----------------------------------------------------------------------
 
@@ -488,13 +498,13 @@ def main(argv: list[str] | None = None) -> int:
     try:
         return args.func(args)
     except (StudyError, EncoderUnavailable, CacheError, EmbedError, OutputError) as exc:
-        print(f"explore: error: {exc}", file=sys.stderr)
+        say(f"explore: error: {exc}", file=sys.stderr)
         return 2
     except OSError as exc:  # the environment: permissions, read-only or full disk, a file in the way
-        print(f"explore: error: {os_error_line(exc)}", file=sys.stderr)
+        say(f"explore: error: {os_error_line(exc)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("explore: interrupted; what was cached so far is kept", file=sys.stderr)
+        say("explore: interrupted; what was cached so far is kept", file=sys.stderr)
         return 130
 
 

@@ -332,10 +332,12 @@ def _image_id(key: str) -> str:
     return hashlib.sha1(key.encode("utf-8")).hexdigest()[:12]
 
 
-def _tree_entries(root: Path, categories: dict[str, str]) -> list[_Entry]:
+def _tree_entries(root: Path, categories: dict[str, str], exclude: tuple[Path, ...] = ()) -> list[_Entry]:
     entries = []
+    skip = {p.resolve() for p in exclude}
     for folder, dirs, files in os.walk(root):
-        dirs.sort()
+        # An output folder inside the images root holds our own files, not photos.
+        dirs[:] = sorted(d for d in dirs if (Path(folder) / d).resolve() not in skip)
         for name in sorted(files):
             if name.lower() in _CLUTTER or name.startswith("._"):
                 continue
@@ -595,6 +597,7 @@ def collect_images(
     metadata: str | Path | None = None,
     max_per_poster: int = 0,
     seed: int = 0,
+    exclude: tuple[Path, ...] = (),
 ) -> pd.DataFrame:
     """Find the images and build the images table (one row per file found).
 
@@ -616,6 +619,7 @@ def collect_images(
     max_per_poster : at most this many usable photos per poster within a
         brand x source (0: no cap); the rest get status ``over_poster_cap``.
     seed : seeds the choice of the photos kept under the cap.
+    exclude : folders under the root that are not searched (a study's output folder).
 
     Returns
     -------
@@ -641,7 +645,7 @@ def collect_images(
             raise FileNotFoundError(f"{root}: images folder not found")
         if not root.is_dir():
             raise CollectError(f"{root}: expected a folder ROOT/<brand>/<source>/... of images")
-        entries = _tree_entries(root.absolute(), categories)
+        entries = _tree_entries(root.absolute(), categories, tuple(Path(p) for p in exclude))
         if metadata is not None:
             _apply_sidecar(Path(metadata), root.absolute(), entries)
     else:
@@ -834,6 +838,7 @@ def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
         metadata=study.images.metadata,
         max_per_poster=study.images.max_per_poster,
         seed=study.seed,
+        exclude=(study.output,),
     )
 
 

@@ -175,3 +175,107 @@ def test_os_error_line_names_the_path():
     line = os_error_line(OSError(28, os.strerror(28), "/x/y.csv"))
     assert line.startswith("/x/y.csv: No space left on device")
     assert os_error_line(FileNotFoundError("/x: labels file not found")) == "/x: labels file not found"
+
+
+# --- the smaller faults --------------------------------------------------------------
+
+
+def test_csv_cells_that_a_spreadsheet_would_run_are_guarded(tmp_path):
+    """OWASP "CSV Injection": text starting with = + - @ tab CR gets a leading apostrophe."""
+    from explore.output import write_tables
+
+    table = pd.DataFrame({
+        "brand": ['=HYPERLINK("http://x","y")', "+cmd", "@SUM(A1)", "\tx", "Plain", "-3"],
+        "score": [-1.5, 2.0, -3.0, 4.0, 5.0, 6.0],
+    })
+    write_tables(tmp_path, {"t": table})
+    back = pd.read_csv(tmp_path / "t.csv", dtype={"brand": str})
+    assert back["brand"].tolist() == ['\'=HYPERLINK("http://x","y")', "'+cmd", "'@SUM(A1)", "'\tx", "Plain", "-3"]
+    assert back["score"].tolist() == [-1.5, 2.0, -3.0, 4.0, 5.0, 6.0]  # numbers stay numbers
+    assert pd.read_parquet(tmp_path / "t.parquet")["brand"].tolist() == table["brand"].tolist()  # exact
+
+
+def test_starter_file_and_terminal_with_control_and_bidi_characters(tmp_path):
+    from explore.study import load_study
+
+    photos = tmp_path / "photos"
+    names = ["Esc\x1b[31mape", "Left\u202eright", "Plain"]
+    for name in names:
+        (photos / name / "consumer").mkdir(parents=True)
+    done = subprocess.run(kit.explore_args("init", photos), cwd=tmp_path, env=kit.env(), capture_output=True,
+                          text=True)
+    assert done.returncode == 0, done.stderr
+    assert "\x1b" not in done.stdout and "\u202e" not in done.stdout
+    assert "Esc[U+001B][31mape" in done.stdout and "Left[U+202E]right" in done.stdout
+    text = (photos / "study.toml").read_text(encoding="utf-8")
+    assert "\x1b" not in text and "\u202e" not in text
+    study = load_study(photos / "study.toml")  # the run accepts it, with the exact folder names
+    assert sorted(study.brands) == sorted(names)
+
+
+def test_report_shows_names_with_bidi_characters_made_visible():
+    from explore.report.data import shown_names
+
+    table = pd.DataFrame({"brand": ["ok", "gnp\u202eexe"], "n": [1, 2], "path": ["/a\u202eb", "/c"]})
+    shown = shown_names(table.copy())
+    assert shown["brand"].tolist() == ["ok", "gnp[U+202E]exe"]
+    assert shown["path"].tolist() == ["/a\u202eb", "/c"]  # thumbnails still read the real file
+
+
+def test_thumbnails_of_16_bit_greyscale_match_what_the_model_sees(tmp_path):
+    """A 16-bit PNG at 32768 of 65535 is mid-grey: 32768 * 255 / 65535 = 127.5 (independent arithmetic)."""
+    import io
+
+    import numpy as np
+    from PIL import Image
+
+    from explore.collect import open_rgb
+    from explore.report.thumbnails import make_thumbnail
+
+    path = tmp_path / "grey16.png"
+    Image.fromarray(np.full((64, 64), 32768, dtype=np.uint16)).save(path)
+    assert Image.open(path).mode.startswith("I;16") or Image.open(path).mode == "I"
+    thumb = np.asarray(Image.open(io.BytesIO(make_thumbnail(path, 32))).convert("L"), dtype=float)
+    model = np.asarray(open_rgb(path).convert("L"), dtype=float)
+    assert abs(thumb.mean() - 127.5) < 2 and abs(model.mean() - 127.5) < 1
+
+
+def test_an_output_folder_inside_the_images_root_is_not_collected(tmp_path):
+    from explore.collect import collect_images
+
+    study = kit.make_tiny_study(tmp_path, per_cell=1)
+    results = tmp_path / "photos" / "results"
+    results.mkdir()
+    (results / "images.parquet").write_bytes(b"x")
+    (results / "cache").mkdir()
+    (results / "cache" / "lock").write_text("")
+    assert (collect_images(root=tmp_path / "photos", progress=False)["status"] == "misplaced").sum() == 2
+    table = collect_images(root=tmp_path / "photos", progress=False, exclude=(results,))
+    assert len(table) == 4 and set(table["status"]) == {"ok"}
+    from explore.study import load_study
+
+    study.write_text(study.read_text().replace('output = "out"', 'output = "photos/results"'))
+    from explore.collect import collect_study_images
+
+    assert len(collect_study_images(load_study(study), progress=False)) == 4
+
+
+def test_labels_headers_are_case_insensitive(tmp_path):
+    from explore.run import read_labels_file
+
+    path = tmp_path / "labels.csv"
+    path.write_text("Image, ATTRIBUTE ,Label\na.jpg,sunny,1\n", encoding="utf-8")
+    assert list(read_labels_file(path).columns) == ["image", "attribute", "label"]
+
+
+def test_a_repaired_cache_shard_is_printed_and_recorded(complete, tmp_path):
+    study, _ = complete
+    copy = kit.copy_study(study.parent, tmp_path / "repair")
+    shards = sorted((copy.parent / "out" / "cache").glob("bundled-*/shard-*.npz"))
+    assert shards
+    shards[0].write_bytes(b"not an npz file")
+    done = kit.run("run", copy, cwd=copy.parent)
+    assert done.returncode == 0, done.stderr
+    assert f"embed: cache shard {shards[0].name} could not be read" in done.stdout
+    notes = json.loads((copy.parent / "out" / "run.json").read_text())["notes"]
+    assert any(n.startswith(f"embed: cache shard {shards[0].name}") for n in notes)

@@ -77,16 +77,13 @@ def make_thumbnail(path: str | Path, px: int) -> bytes | None:
     """Decode one image and return a JPEG of at most ``px`` x ``px`` pixels (None if unreadable)."""
     from PIL import Image, ImageOps
 
+    from explore.collect import to_rgb
+
     try:
         with Image.open(path) as im:
             im.draft("RGB", (px * 2, px * 2))  # JPEG: decode at reduced scale, much faster
             im = ImageOps.exif_transpose(im)
-            if im.mode not in ("RGB", "L"):
-                im = im.convert("RGBA")
-                background = Image.new("RGB", im.size, (255, 255, 255))
-                background.paste(im, mask=im.getchannel("A"))
-                im = background
-            im = im.convert("RGB")
+            im = to_rgb(im)  # the model's own conversion (16-bit grey scaled, alpha over white, CMYK via ICC)
             im.thumbnail((px, px), Image.Resampling.LANCZOS)
             buf = io.BytesIO()
             im.save(buf, "JPEG", quality=JPEG_QUALITY, optimize=True)
