@@ -303,6 +303,7 @@ def command_fault(name: str, study: Path, out: Path, *args) -> Outcome:
     outcome.message = " | ".join(error_lines(done.stderr))
     outcome.intact = snapshot(out) == before
     outcome.leftovers = leftovers(out) if out.is_dir() else []
+    outcome.one_run = one_run(out) if (out / "run.json").is_file() else ""
     outcome.lost = "nothing" if outcome.intact else "previous results changed"
     return outcome
 
