@@ -125,6 +125,16 @@ def run_study(
     return summary
 
 
+def skip_changed(images: pd.DataFrame, skipped: dict) -> pd.DataFrame:
+    """The images table with the rows of ``skipped`` (sha256 -> (status, reason)) marked as skipped."""
+    images = images.copy()
+    for sha, (status, reason) in skipped.items():
+        rows = (images["sha256"] == sha) & (images["status"] == "ok")
+        images.loc[rows, "status"] = status
+        images.loc[rows, "reason"] = f"{reason} (during the run)"
+    return images
+
+
 def probe_writable(folder: Path) -> None:
     """Write, fsync and remove a real file in ``folder``: the OSError names the folder's problem."""
     folder.mkdir(parents=True, exist_ok=True)
@@ -217,6 +227,16 @@ def _run_stages(
         )
         summary.images_embedded = stats.embedded
         log(stats.describe())
+        if stats.skipped:  # images that changed since collect: listed as skipped, the run goes on
+            images = skip_changed(images, stats.skipped)
+            write_tables(out, {"images": images, "skipped": collect.skipped_files(images)})
+            summary.images_used = int((images["status"] == "ok").sum())
+            summary.images_skipped = summary.images_found - summary.images_used
+            for sha, (status, reason) in stats.skipped.items():
+                where = ", ".join(images.loc[images["sha256"] == sha, "relpath"].astype(str))
+                note = f"embed: {where}: skipped, {reason} ({status})"
+                log(note)
+                summary.notes.append(note)
         for note in stats.notes:  # cache repairs (a damaged shard set aside and re-embedded)
             log(f"embed: {note}")
             summary.notes.append(f"embed: {note}")

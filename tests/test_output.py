@@ -268,14 +268,30 @@ def test_labels_headers_are_case_insensitive(tmp_path):
     assert list(read_labels_file(path).columns) == ["image", "attribute", "label"]
 
 
-def test_a_repaired_cache_shard_is_printed_and_recorded(complete, tmp_path):
+def test_a_repaired_shard_is_recorded_and_an_image_changed_mid_run_is_skipped(complete, tmp_path):
+    """One real run: a damaged cache shard, and a photo rewritten between collect and embed."""
+    import signal
+
+    from PIL import Image
+
     study, _ = complete
     copy = kit.copy_study(study.parent, tmp_path / "repair")
     shards = sorted((copy.parent / "out" / "cache").glob("bundled-*/shard-*.npz"))
     assert shards
     shards[0].write_bytes(b"not an npz file")
-    done = kit.run("run", copy, cwd=copy.parent)
-    assert done.returncode == 0, done.stderr
-    assert f"embed: cache shard {shards[0].name} could not be read" in done.stdout
-    notes = json.loads((copy.parent / "out" / "run.json").read_text())["notes"]
+    proc = kit.start("run", copy, cwd=copy.parent, pause="collect")
+    kit.wait_stopped(proc)
+    Image.new("RGB", (90, 70), (1, 2, 3)).save(copy.parent / "photos" / "Beta" / "owned" / "1.jpg")
+    os.kill(proc.pid, signal.SIGCONT)
+    stdout, stderr = proc.communicate(timeout=600)
+    assert proc.returncode == 0, stderr
+    assert f"embed: cache shard {shards[0].name} could not be read" in stdout
+    assert "embed: Beta/owned/1.jpg: skipped, the file's content changed since it was collected" in stdout
+    out = copy.parent / "out"
+    notes = json.loads((out / "run.json").read_text())["notes"]
     assert any(n.startswith(f"embed: cache shard {shards[0].name}") for n in notes)
+    images = pd.read_parquet(out / "images.parquet").set_index("relpath")
+    assert images.loc["Beta/owned/1.jpg", "status"] == "changed"
+    assert (images["status"] == "ok").sum() == 7
+    assert "Beta/owned/1.jpg" in set(pd.read_parquet(out / "skipped.parquet")["relpath"])
+    assert kit.one_run(out) == ""
