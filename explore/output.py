@@ -435,8 +435,11 @@ class _temporary:
     def __exit__(self, kind, value, tb) -> bool:
         if kind is None:
             os.replace(self.tmp, self.path)
-        else:
-            self.tmp.unlink(missing_ok=True)
+            return False
+        self.tmp.unlink(missing_ok=True)
+        if isinstance(value, OSError) and value.filename is None and value.errno:
+            # pyarrow's write errors name no file: name the table being written
+            raise OSError(value.errno, os.strerror(value.errno), str(self.path)) from value
         return False
 
 

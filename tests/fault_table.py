@@ -29,7 +29,7 @@ def main() -> int:
     try:
         study, out = kit.baseline(work / "study")
         rows.append(kit.concurrent_runs(study, out))
-        for boundary in ("collect", "embed", "attributes", "report"):
+        for boundary in ("collect", "embed", "attributes", "report", "publish"):
             rows.append(kit.kill_at(study, out, boundary))
         rows.append(kit.output_is_file(work, study.parent))
         rows.append(kit.bad_setting(work, study.parent, "[report]\nthumbnail_px = 5", "report.thumbnail_px = 5"))

@@ -164,7 +164,7 @@ def test_full_disk(complete, tmp_path):
     outcome = kit.full_disk(tmp_path, study.parent)
     assert outcome.status == 2, outcome.message
     assert outcome.message.count("explore: error:") == 1 and "Traceback" not in outcome.message
-    assert "No space left on device" in outcome.message
+    assert "No space left on device" in outcome.message and "/full/out/" in outcome.message  # names the file
     assert outcome.intact and outcome.leftovers == []
     assert outcome.one_run == "", outcome.one_run  # after freeing space the next run completes
 
