@@ -285,6 +285,7 @@ def kill_at(study: Path, out: Path, boundary: str) -> Outcome:
     assert report.returncode == 0, report.stdout + report.stderr
     outcome.next_note = " | ".join(line for line in report.stdout.splitlines() if line.startswith("output:"))
     if boundary == "publish":  # half moved: the report command finishes the move from the journal
+        outcome.intact = None
         outcome.one_run = one_run(out)
         outcome.lost = f"nothing: run {run_id(out)} completed by the next command (was {previous})"
     else:

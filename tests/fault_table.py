@@ -49,7 +49,7 @@ def main() -> int:
     for row in rows:
         status = "" if row.status is None else str(row.status)
         if row.intact is None:
-            results = ""
+            results = "" if row.status != -9 else ("new run complete" if not row.one_run else "MIXED")
         else:
             results = "intact" if row.intact else "CHANGED"
             results += ", one run" if not row.one_run else ", MIXED"
