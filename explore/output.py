@@ -210,15 +210,6 @@ def _previous_note(previous: dict) -> list[str]:
     return []
 
 
-def check_not_busy(folder: str | Path) -> None:
-    """Raise ``OutputBusy`` now if another command holds ``folder``'s lock (without taking it)."""
-    path = Path(folder) / LOCK_FILE
-    if not path.is_file():
-        return
-    with OutputLock(folder, "probe"):
-        pass
-
-
 # --------------------------------------------------------------------------
 # Staging and publishing
 

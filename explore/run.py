@@ -490,9 +490,6 @@ def check_study(
     -------
     list of ``attributes.AttributeCheck``, one per labelled attribute.
     """
-    from explore import attributes, collect, embed
-    from explore.study import StudyError
-
     labels_path = Path(labels_path)
     table = read_labels_file(labels_path)
 
