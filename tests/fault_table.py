@@ -45,6 +45,7 @@ def main() -> int:
             rows.append(kit.full_disk(work, study.parent))
     finally:
         shutil.rmtree(work, ignore_errors=True)
+    print("WORK = a temporary folder; tiny study of 8 generated photos, bundled encoder")
     print(f"{'fault':<34} {'exit':>4}  {'results':<22} outcome / what was lost")
     for row in rows:
         status = "" if row.status is None else str(row.status)
@@ -55,10 +56,10 @@ def main() -> int:
             results += ", one run" if not row.one_run else ", MIXED"
             if row.leftovers:
                 results += ", LEFTOVERS"
-        said = row.message or row.next_note
+        said = (row.message or row.next_note).replace(str(work), "WORK")
         print(f"{row.fault:<34} {status:>4}  {results:<22} {said}")
         if row.lost:
-            print(f"{'':<34} {'':>4}  {'':<22} lost: {row.lost}")
+            print(f"{'':<34} {'':>4}  {'':<22} lost: {row.lost.replace(str(work), 'WORK')}")
     print(f"({time.time() - started:.0f} s)")
     return 0
 
