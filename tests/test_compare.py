@@ -78,7 +78,7 @@ def test_concordant_share_is_half_one_plus_tau_without_ties(n):
 
 
 @pytest.mark.parametrize("seed, with_ties", [(1, False), (2, True), (3, True), (4, False)])
-def test_statistics_equal_scipy(seed, with_ties):
+def test_coefficients_match_textbook_formulas(seed, with_ties):
     rng = np.random.default_rng(seed)
     n = 9
     x = rng.normal(size=n)
@@ -90,20 +90,172 @@ def test_statistics_equal_scipy(seed, with_ties):
     got = compare.pair_agreement(x, y)
     keep = ~np.isnan(x)
     xs, ys = x[keep], y[keep]
-    # references: scipy.stats.kendalltau (tau-b), spearmanr, pearsonr
-    tau = stats.kendalltau(xs, ys)
-    rho = stats.spearmanr(xs, ys)
-    r = stats.pearsonr(xs, ys)
-    assert got["n_brands"] == n - 1
-    assert got["kendall_tau"] == pytest.approx(tau.statistic, abs=1e-12)
-    assert got["kendall_p"] == pytest.approx(tau.pvalue, abs=1e-12)
-    assert got["spearman_rho"] == pytest.approx(rho.statistic, abs=1e-12)
-    assert got["spearman_p"] == pytest.approx(rho.pvalue, abs=1e-12)
-    assert got["pearson_r"] == pytest.approx(r.statistic, abs=1e-12)
-    assert got["pearson_p"] == pytest.approx(r.pvalue, abs=1e-12)
-    assert got["concordant"] + got["discordant"] + got["ties"] == got["pairs"] == (n - 1) * (n - 2) // 2
+    m = len(xs)
+    # independent computations: Pearson's r as numpy.corrcoef; Spearman's rho
+    # as Pearson's r of average ranks (Spearman 1904; with no ties the same as
+    # 1 - 6 sum d^2 / (n (n^2 - 1))); Kendall's tau-b by brute force over pairs
+    # (Kendall 1945: (C - D) / sqrt((P - Tx)(P - Ty))).
+    rx, ry = stats.rankdata(xs), stats.rankdata(ys)
+    assert got["n_brands"] == m
+    assert got["pearson_r"] == pytest.approx(np.corrcoef(xs, ys)[0, 1], abs=1e-12)
+    assert got["spearman_rho"] == pytest.approx(np.corrcoef(rx, ry)[0, 1], abs=1e-12)
+    if not with_ties:
+        d2 = float(np.sum((rx - ry) ** 2))
+        assert got["spearman_rho"] == pytest.approx(1 - 6 * d2 / (m * (m * m - 1)), abs=1e-12)
+    c = d = tx = ty = 0
+    for i in range(m):
+        for j in range(i + 1, m):
+            sx, sy = np.sign(xs[i] - xs[j]), np.sign(ys[i] - ys[j])
+            c += sx * sy > 0
+            d += sx * sy < 0
+            tx += sx == 0
+            ty += sy == 0
+    pairs = m * (m - 1) // 2
+    assert got["kendall_tau"] == pytest.approx((c - d) / np.sqrt((pairs - tx) * (pairs - ty)), abs=1e-12)
+    assert got["concordant"] + got["discordant"] + got["ties"] == got["pairs"] == pairs
+    assert got["p_method"].startswith("exact permutation")
     if with_ties:
         assert got["ties"] > 0 and "tied" in got["note"]
+
+
+def test_exact_p_three_brands_can_never_go_below_one_third():
+    # Full enumeration by hand: 3 brands have 3! = 6 orderings; a perfect
+    # agreement ties with its reverse (|rho| = |tau| = |r| = 1), so the smallest
+    # two-sided exact p is 2/6 = 1/3 whatever the data (the example:
+    # the report printed "Spearman rho 1 (p 0)").
+    got = compare.exact_permutation_pvalues([0.1, 0.2, 0.3], [3.0, 4.0, 5.0])
+    assert got == pytest.approx({"kendall": 1 / 3, "spearman": 1 / 3, "pearson": 1 / 3}, abs=1e-15)
+    # the table gives no p-value below 5 brands (counts only)
+    row = compare.pair_agreement([0.1, 0.2, 0.3], [3.0, 4.0, 5.0])
+    assert np.isnan(row["spearman_p"]) and np.isnan(row["spearman_rho"]) and row["concordant"] == 3
+    assert row["note"].startswith("counts only")
+
+
+def test_exact_spearman_p_five_brands_worked_by_hand():
+    # n = 5, one adjacent swap: sum d^2 = 2, rho = 1 - 6 * 2 / 120 = 0.9. By hand:
+    # rho >= 0.9 for the identity and the 4 adjacent swaps, rho <= -0.9 for
+    # their reverses, so the two-sided exact p = 10 / 120 (consistent with
+    # Zar 1972, JASA 67:578, table of critical values: n = 5, two-sided
+    # alpha 0.10 -> 0.900; from memory).
+    got = compare.pair_agreement([1, 2, 3, 4, 5], [2, 1, 3, 4, 5])
+    assert got["spearman_rho"] == pytest.approx(0.9)
+    assert got["spearman_p"] == pytest.approx(10 / 120, abs=1e-15)
+
+
+@pytest.mark.parametrize("n, ties", [(5, False), (6, True), (7, False)])
+def test_exact_p_matches_scipy_permutation_test(n, ties):
+    # Reference: scipy.stats.permutation_test(permutation_type="pairings",
+    # n_resamples=inf) enumerates every ordering of x against y; with the
+    # statistic |stat| and alternative "greater" it is the two-sided p that
+    # counts orderings at least as far from 0 (our definition).
+    rng = np.random.default_rng(n)
+    x = rng.normal(size=n)
+    y = 0.5 * x + rng.normal(size=n)
+    if ties:
+        x, y = np.round(x), np.round(2 * y) / 2
+    got = compare.exact_permutation_pvalues(x, y)
+
+    def ref(fn):
+        res = stats.permutation_test((x,), lambda xp: abs(fn(xp, y)), permutation_type="pairings",
+                                     n_resamples=np.inf, alternative="greater")
+        return res.pvalue
+
+    assert got["pearson"] == pytest.approx(ref(lambda a, b: np.corrcoef(a, b)[0, 1]), abs=1e-12)
+    assert got["spearman"] == pytest.approx(ref(lambda a, b: stats.spearmanr(a, b).statistic), abs=1e-12)
+    assert got["kendall"] == pytest.approx(ref(lambda a, b: stats.kendalltau(a, b).statistic), abs=1e-12)
+    if not ties:
+        # and Kendall's (1938) exact null distribution as scipy computes it
+        assert got["kendall"] == pytest.approx(stats.kendalltau(x, y, method="exact").pvalue, abs=1e-12)
+
+
+def test_large_sample_p_above_ten_brands_matches_textbook_formulas():
+    rng = np.random.default_rng(12)
+    n = 14
+    x = rng.normal(size=n)
+    y = 0.4 * x + rng.normal(size=n)
+    got = compare.pair_agreement(x, y)
+    assert got["p_method"] == "large-sample (scipy)"
+    # Pearson: t = r sqrt((n - 2) / (1 - r^2)) on n - 2 df (Student; Fisher 1915)
+    r = got["pearson_r"]
+    t = r * np.sqrt((n - 2) / (1 - r * r))
+    assert got["pearson_p"] == pytest.approx(2 * stats.t.sf(abs(t), n - 2), rel=1e-9)
+    # Kendall, no ties, 40 brands (scipy's "auto" is exact up to 33): z = 3 S /
+    # sqrt(n (n - 1) (2n + 5) / 2) (Kendall 1938), normal tail
+    n = 40
+    x = rng.normal(size=n)
+    got = compare.pair_agreement(x, 0.3 * x + rng.normal(size=n))
+    s = got["concordant"] - got["discordant"]
+    z = 3 * s / np.sqrt(n * (n - 1) * (2 * n + 5) / 2)
+    assert got["kendall_p"] == pytest.approx(2 * stats.norm.sf(abs(z)), rel=1e-9)
+
+
+def test_pearson_interval_matches_scipy_fisher_z():
+    # Reference: scipy.stats.pearsonr(...).confidence_interval() (Fisher z, 95 %).
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=9)
+    y = 0.5 * x + rng.normal(size=9)
+    got = compare.pair_agreement(x, y)
+    ci = stats.pearsonr(x, y).confidence_interval(0.95)
+    assert (got["pearson_low"], got["pearson_high"]) == pytest.approx((ci.low, ci.high), abs=1e-12)
+
+
+def test_rank_correlation_intervals_cover_the_truth_at_the_stated_rate():
+    # Simulation with known truth: bivariate normal with correlation 0.5, whose
+    # population Kendall tau = (2 / pi) asin(0.5) and Spearman rho =
+    # (6 / pi) asin(0.25) (Greiner 1909; Pearson 1907). The Fieller, Hartley
+    # and Pearson (1957) intervals are known to cover close to 95 % for
+    # moderate n (Bonett and Wright 2000); 600 replications of 10 brands.
+    rng = np.random.default_rng(2026)
+    tau_true, rho_true = 2 / np.pi * np.arcsin(0.5), 6 / np.pi * np.arcsin(0.25)
+    n, reps = 10, 600
+    cover = {"kendall": 0, "spearman": 0}
+    for _ in range(reps):
+        x = rng.normal(size=n)
+        y = 0.5 * x + np.sqrt(0.75) * rng.normal(size=n)
+        tau, rho = stats.kendalltau(x, y).statistic, stats.spearmanr(x, y).statistic
+        lo, hi = compare.fisher_z_interval(tau, np.sqrt(0.437 / (n - 4)))
+        cover["kendall"] += lo <= tau_true <= hi
+        lo, hi = compare.fisher_z_interval(rho, np.sqrt(1.06 / (n - 3)))
+        cover["spearman"] += lo <= rho_true <= hi
+    print({k: v / reps for k, v in cover.items()})
+    # +-2.2 binomial standard errors around 0.95 at 600 replications
+    assert all(0.93 <= v / reps <= 0.975 for v in cover.values())
+    # and the table uses those same standard errors
+    x = rng.normal(size=n)
+    y = x + rng.normal(size=n)
+    got = compare.pair_agreement(x, y)
+    assert (got["kendall_low"], got["kendall_high"]) == pytest.approx(
+        compare.fisher_z_interval(got["kendall_tau"], np.sqrt(0.437 / (n - 4))))
+
+
+def test_agreement_family_is_corrected_by_benjamini_hochberg():
+    # Reference: statsmodels.stats.multitest.multipletests(method="fdr_bh") over
+    # the rows with a p-value (the family); "significant" only after correction.
+    from statsmodels.stats.multitest import multipletests
+
+    rng = np.random.default_rng(4)
+    brands = [f"B{k}" for k in range(7)]
+    rows = []
+    for k, attribute in enumerate([f"a{k}" for k in range(12)]):
+        base = rng.normal(size=7)
+        # two attributes agree strongly, the rest are noise
+        owned = base + (0.05 if k < 2 else 3.0) * rng.normal(size=7)
+        for b, c, o in zip(brands, base, owned):
+            rows.append({"category": "c", "brand": b, "attribute": attribute,
+                         "consumer_share": c, "owned_share": o, "survey_score": np.nan})
+    metrics = pd.DataFrame(rows)
+    table = compare.agreement_table(metrics)
+    tested = table["kendall_p"].notna()
+    assert tested.all() and len(table) == 12
+    for name in ("kendall", "spearman", "pearson"):
+        ref = multipletests(table[f"{name}_p"], method="fdr_bh")[1]
+        np.testing.assert_allclose(table[f"{name}_q"], ref, rtol=1e-12)
+    assert (table["significant"] == (table["kendall_q"] <= 0.05)).all()
+    assert table["family"].str.contains("m = 12").all()
+    # a row significant before correction but not after exists, and is not flagged
+    raw_only = (table["kendall_p"] <= 0.05) & (table["kendall_q"] > 0.05)
+    assert (~table.loc[raw_only, "significant"]).all()
+    assert table.loc[table["attribute"].isin(["a0", "a1"]), "significant"].all()
 
 
 def test_pair_counts_by_hand():
@@ -117,7 +269,7 @@ def test_too_few_brands_gives_counts_and_a_note():
     got = compare.pair_agreement([0.2, 0.5], [3.0, 4.0])
     assert got["n_brands"] == 2 and got["pairs"] == 1 and got["concordant"] == 1
     assert np.isnan(got["kendall_tau"]) and np.isnan(got["pearson_p"])
-    assert got["note"].startswith("too few brands")
+    assert got["note"].startswith("counts only")
 
     # through the table: a category with two brands
     consumer = {b: p for b, p in random_profiles(5).items() if b in ("Alba", "Brio", "Dune", "Echo", "Fjel")}
@@ -125,14 +277,17 @@ def test_too_few_brands_gives_counts_and_a_note():
     rows = tables["agreement"]
     drinks = rows[rows["category"] == "drinks"]
     assert (drinks["n_brands"] == 2).all() and drinks["kendall_tau"].isna().all()
-    assert drinks["note"].str.startswith("too few brands").all()
+    assert drinks["note"].str.startswith("counts only").all()
+    # 3 brands: counts only as well (no p-value below 5 brands); 5 pooled: tested
     gear = rows[rows["category"] == "gear"]
-    assert gear["kendall_tau"].notna().all()
-    assert any("too few brands" in n and "drinks" in n for n in notes)
+    assert (gear["n_brands"] == 3).all() and gear["kendall_p"].isna().all() and gear["concordant"].notna().all()
+    pooled = rows[rows["category"] == compare.ALL_CATEGORIES]
+    assert (pooled["n_brands"] == 5).all() and pooled["kendall_p"].notna().all()
+    assert any("counts only" in n and "drinks" in n and "gear" in n for n in notes)
 
 
 def test_constant_metric_is_explained_not_computed():
-    got = compare.pair_agreement([0.0, 0.0, 0.0, 0.0], [1.0, 2.0, 3.0, 4.0])
+    got = compare.pair_agreement([0.0, 0.0, 0.0, 0.0, 0.0], [1.0, 2.0, 3.0, 4.0, 5.0])
     assert np.isnan(got["spearman_rho"]) and "same for every brand" in got["note"]
 
 
@@ -149,7 +304,12 @@ def test_agreement_table_covers_categories_attributes_and_metric_pairs(tmp_path)
     # survey built as 7 x consumer share: a perfect linear and rank agreement
     cs = agreement[(agreement["metric_a"] == "consumer_share") & (agreement["metric_b"] == "survey_score")]
     assert (cs["concordant_share"] == 1.0).all()
-    assert np.allclose(cs["pearson_r"], 1.0, atol=1e-6)
+    # 3 brands per category: counts only; the 6 pooled brands get correlations and an exact p
+    pooled = cs["category"] == compare.ALL_CATEGORIES
+    assert cs.loc[~pooled, "pearson_r"].isna().all()
+    assert np.allclose(cs.loc[pooled, "pearson_r"], 1.0, atol=1e-6)
+    # perfect agreement of 6 brands: exact p = 2 / 6! (itself and its reverse), by enumeration
+    assert np.allclose(cs.loc[pooled, "spearman_p"], 2 / 720, rtol=1e-12)
 
 
 def test_rank_gaps_by_hand():

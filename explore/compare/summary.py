@@ -4,7 +4,13 @@ from __future__ import annotations
 
 import pandas as pd
 
-from explore.compare.agreement import ALL_CATEGORIES, MIN_BRANDS, agreement_table
+from explore.compare.agreement import (
+    AGREEMENT_FDR,
+    ALL_CATEGORIES,
+    EXACT_MAX_BRANDS,
+    MIN_TEST_BRANDS,
+    agreement_table,
+)
 from explore.compare.maps import brand_displacement, brand_maps, brand_vector_map
 from explore.compare.survey import brand_metrics, join_survey
 
@@ -17,7 +23,8 @@ def attribute_agreement(agreement: pd.DataFrame, metric_a: str, metric_b: str) -
     Returns
     -------
     DataFrame with ``attribute``, ``concordant``, ``pairs``, ``ties``,
-    ``concordant_share``, sorted from best to worst agreement.
+    ``n_brands`` (brands behind the pooled pairs), ``concordant_share``,
+    sorted from best to worst agreement.
     """
     rows = agreement[
         (agreement["metric_a"] == metric_a)
@@ -25,12 +32,15 @@ def attribute_agreement(agreement: pd.DataFrame, metric_a: str, metric_b: str) -
         & (agreement["category"] != ALL_CATEGORIES)
     ]
     if rows.empty:
-        return pd.DataFrame(columns=["attribute", "concordant", "pairs", "ties", "concordant_share"])
-    pooled = rows.groupby("attribute", sort=True)[["concordant", "pairs", "ties"]].sum().reset_index()
+        return pd.DataFrame(columns=["attribute", "concordant", "pairs", "ties", "n_brands", "concordant_share"])
+    pooled = rows.groupby("attribute", sort=True)[["concordant", "pairs", "ties", "n_brands"]].sum().reset_index()
     pooled = pooled[pooled["pairs"] > 0]
     pooled["concordant_share"] = pooled["concordant"] / pooled["pairs"]
     return pooled.sort_values(["concordant_share", "attribute"], ascending=[False, True]).reset_index(drop=True)
 
+
+#: Fewest pooled brand pairs for an attribute to be called best or worst.
+MIN_SUMMARY_PAIRS = 3
 
 _METRIC_WORDS = {
     "consumer_share": "consumer photos",
@@ -64,14 +74,35 @@ def summarise(tables: dict[str, pd.DataFrame], *, top: int = 2) -> list[str]:
                 return f"{r.attribute} ({int(r.concordant)}/{int(r.pairs)} pairs{tie})"
 
             words = f"agreement {_METRIC_WORDS[a]} vs {_METRIC_WORDS[b]} (brand pairs ranked alike)"
-            if per["concordant_share"].nunique() == 1:
-                alike = "" if len(per) == 1 else "alike for every attribute: "
-                lines.append(f"{words}: {alike}{', '.join(fmt(r) for r in per.head(3).itertuples())}")
+            # "best" / "worst" only where an attribute rests on enough brands and pairs
+            enough = (per["n_brands"] >= MIN_TEST_BRANDS) & (per["pairs"] >= MIN_SUMMARY_PAIRS)
+            if not enough.all() or per["concordant_share"].nunique() == 1:
+                why = "" if enough.all() else (
+                    f" (counts only: best/worst needs at least {MIN_TEST_BRANDS} brands and "
+                    f"{MIN_SUMMARY_PAIRS} pairs per attribute)"
+                )
+                alike = "" if len(per) == 1 or not enough.all() else "alike for every attribute: "
+                lines.append(f"{words}{why}: {alike}{', '.join(fmt(r) for r in per.head(3).itertuples())}")
                 continue
             hi, lo = per["concordant_share"].max(), per["concordant_share"].min()
             best = [fmt(r) for r in per[per["concordant_share"] > lo].head(top).itertuples()]
             worst = [fmt(r) for r in per[per["concordant_share"] < hi].iloc[::-1].head(top).itertuples()]
-            lines.append(f"{words}: best {', '.join(best)}; worst {', '.join(worst)}")
+            lines.append(f"{words}: best {', '.join(best)}; worst {', '.join(worst)} (pooled within categories; counts, not tests)")
+        tested = agreement[agreement["kendall_p"].notna()] if "kendall_p" in agreement else agreement.iloc[0:0]
+        if len(tested):
+            sig = tested[tested["significant"].astype(bool)]
+            named = ", ".join(
+                f"{r.attribute} {_METRIC_WORDS[r.metric_a]} vs {_METRIC_WORDS[r.metric_b]} ({r.category})"
+                for r in sig.head(top + 1).itertuples()
+            )
+            lines.append(
+                f"agreement tests: {len(sig)} of {len(tested)} significant after Benjamini-Hochberg at "
+                f"{AGREEMENT_FDR:.0%} (Kendall tau-b, exact permutation p up to {EXACT_MAX_BRANDS} brands; family: "
+                f"every category x attribute x metric pair with at least {MIN_TEST_BRANDS} brands)"
+                + (f": {named}" if named else "")
+            )
+        else:
+            lines.append(f"agreement tests: none (no comparison has {MIN_TEST_BRANDS} or more brands; counts only)")
     disp = tables.get("brand_displacement")
     if disp is not None and len(disp):
         moved = disp.dropna(subset=["displacement"]).sort_values("displacement", ascending=False)
@@ -172,9 +203,12 @@ def compare_study(
                      "(no random hand labels, so no corrected shares)")
     agreement = agreement_table(metrics)
     brands_per_category = metrics.groupby("category")["brand"].nunique()
-    too_few = sorted(brands_per_category[brands_per_category < MIN_BRANDS].index)
+    too_few = sorted(brands_per_category[brands_per_category < MIN_TEST_BRANDS].index)
     if too_few:
-        notes.append(f"agreement: too few brands for statistics in {', '.join(too_few)} (counts only)")
+        notes.append(
+            f"agreement: counts only within {', '.join(too_few)} (fewer than {MIN_TEST_BRANDS} brands each: "
+            "no correlations or p-values)"
+        )
     brand_map, loadings, map_notes = brand_maps(metrics)
     notes += map_notes
     vector_map, distances = None, None
