@@ -323,6 +323,8 @@ def _run_stages(
                 brand_categories=dict(zip(images["brand"], images["category"])),
                 images=images,
                 embeddings=embeddings,
+                image_attributes=attribute_tables.get("image_attributes"),
+                seed=study.seed,
             )
             summary.tables += write_tables(out, compare_tables)
             summary.notes += [f"compare: {note}" for note in compare_notes]

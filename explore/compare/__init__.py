@@ -57,7 +57,16 @@ from explore.compare.maps import (
     rank_gaps,
     standardise,
 )
-from explore.compare.summary import attribute_agreement, compare_study, summarise
+from explore.compare.summary import attribute_agreement, compare_study, format_p, summarise
+from explore.compare.uncertainty import (
+    BOOTSTRAP_COLUMNS,
+    MAP_REPLICATES,
+    MOVES_MOST_SHARE,
+    PROTEST_EXACT_MAX,
+    map_bootstrap,
+    protest,
+    resampling_units,
+)
 from explore.compare.survey import (
     METRICS,
     SURVEY_OPTIONAL,
@@ -69,6 +78,8 @@ from explore.compare.survey import (
 )
 
 __all__ = [
+    "format_p", "BOOTSTRAP_COLUMNS", "MAP_REPLICATES", "MOVES_MOST_SHARE", "PROTEST_EXACT_MAX",
+    "map_bootstrap", "protest", "resampling_units",
     "AGREEMENT_COLUMNS", "AGREEMENT_FDR", "EXACT_MAX_BRANDS", "MIN_TEST_BRANDS",
     "exact_permutation_pvalues", "family_name", "fisher_z_interval",
     "ALL_CATEGORIES",

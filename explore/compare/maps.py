@@ -210,7 +210,9 @@ def profile_matrix(metrics: pd.DataFrame, column: str) -> pd.DataFrame:
     return wide.sort_index(axis=0).sort_index(axis=1)
 
 
-def brand_maps(metrics: pd.DataFrame, *, min_brands: int = MIN_BRANDS) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+def brand_maps(
+    metrics: pd.DataFrame, *, min_brands: int = MIN_BRANDS, seed: int = 0
+) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
     """PCA brand maps per source, aligned onto the consumer map.
 
     For each source (consumer share, owned share, survey score) the brands x
@@ -234,12 +236,17 @@ def brand_maps(metrics: pd.DataFrame, *, min_brands: int = MIN_BRANDS) -> tuple[
     brand_map: ``source``, ``brand``, ``category``, ``pc1``, ``pc2``,
     ``aligned_x``, ``aligned_y``, ``explained_1``, ``explained_2`` (explained
     variance ratios), ``n_brands``, ``n_attributes``, ``disparity``
-    (Procrustes disparity against the consumer map; 0 for consumer).
+    (Procrustes disparity against the consumer map; 0 for consumer),
+    ``protest_p``, ``protest_correlation``, ``protest_method`` (PROTEST,
+    Jackson 1995, of that alignment: see ``explore.compare.uncertainty``;
+    NaN / empty for consumer). ``seed`` seeds PROTEST's random orderings.
     loadings: ``source``, ``attribute``, ``loading_1``, ``loading_2``
     (correlations), ``direction_1``, ``direction_2`` (unit component
     weights), ``aligned_1``, ``aligned_2`` (loadings rotated like the
     aligned map), ``used`` (False for attributes constant over brands).
     """
+    from explore.compare.uncertainty import protest  # uncertainty builds on this module
+
     categories = metrics.drop_duplicates("brand").set_index("brand")["category"].to_dict()
     maps, loads, notes = {}, {}, []
     for source, column in zip(MAP_SOURCES, METRICS):
@@ -293,6 +300,7 @@ def brand_maps(metrics: pd.DataFrame, *, min_brands: int = MIN_BRANDS) -> tuple[
         aligned = np.full_like(xy, np.nan)
         rotation = np.full((2, 2), np.nan)
         disparity = float("nan")
+        test = {"p_value": float("nan"), "correlation": float("nan"), "method": ""}
         if target is None:
             pass
         elif source == "consumer":
@@ -309,8 +317,12 @@ def brand_maps(metrics: pd.DataFrame, *, min_brands: int = MIN_BRANDS) -> tuple[
                 fit = procrustes(t, m)
                 aligned = fit["scale"] * (xy - fit["mean_moving"]) @ fit["rotation"] + fit["mean_target"]
                 rotation, disparity = fit["rotation"], fit["disparity"]
+                test = protest(t, m, seed=seed)
         table["aligned_x"], table["aligned_y"] = aligned[:, 0], aligned[:, 1]
         table["disparity"] = disparity
+        table["protest_p"] = test["p_value"]
+        table["protest_correlation"] = test["correlation"]
+        table["protest_method"] = test["method"]
         ld = loads[source]
         turned = ld[["loading_1", "loading_2"]].to_numpy() @ rotation
         ld["aligned_1"], ld["aligned_2"] = turned[:, 0], turned[:, 1]
@@ -318,6 +330,7 @@ def brand_maps(metrics: pd.DataFrame, *, min_brands: int = MIN_BRANDS) -> tuple[
     map_cols = [
         "source", "brand", "category", "pc1", "pc2", "aligned_x", "aligned_y",
         "explained_1", "explained_2", "n_brands", "n_attributes", "disparity",
+        "protest_p", "protest_correlation", "protest_method",
     ]
     load_cols = [
         "source", "attribute", "loading_1", "loading_2", "direction_1", "direction_2",

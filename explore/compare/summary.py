@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
 
 from explore.compare.agreement import (
@@ -13,6 +14,7 @@ from explore.compare.agreement import (
 )
 from explore.compare.maps import brand_displacement, brand_maps, brand_vector_map
 from explore.compare.survey import brand_metrics, join_survey
+from explore.compare.uncertainty import BOOTSTRAP_COLUMNS, MAP_REPLICATES, MOVES_MOST_SHARE, map_bootstrap
 
 
 def attribute_agreement(agreement: pd.DataFrame, metric_a: str, metric_b: str) -> pd.DataFrame:
@@ -37,6 +39,17 @@ def attribute_agreement(agreement: pd.DataFrame, metric_a: str, metric_b: str) -
     pooled = pooled[pooled["pairs"] > 0]
     pooled["concordant_share"] = pooled["concordant"] / pooled["pairs"]
     return pooled.sort_values(["concordant_share", "attribute"], ascending=[False, True]).reset_index(drop=True)
+
+
+def format_p(p) -> str:
+    """A p-value as text: "< 0.001" below 0.001, never "0"; "–" when missing."""
+    try:
+        p = float(p)
+    except (TypeError, ValueError):
+        return "–"
+    if not np.isfinite(p):
+        return "–"
+    return "< 0.001" if p < 0.001 else f"{p:.3f}"
 
 
 #: Fewest pooled brand pairs for an attribute to be called best or worst.
@@ -97,7 +110,7 @@ def summarise(tables: dict[str, pd.DataFrame], *, top: int = 2) -> list[str]:
             )
             lines.append(
                 f"agreement tests: {len(sig)} of {len(tested)} significant after Benjamini-Hochberg at "
-                f"{AGREEMENT_FDR:.0%} (Kendall tau-b, exact permutation p up to {EXACT_MAX_BRANDS} brands; family: "
+                f"{100 * AGREEMENT_FDR:.0f} % (Kendall tau-b, exact permutation p up to {EXACT_MAX_BRANDS} brands; family: "
                 f"every category x attribute x metric pair with at least {MIN_TEST_BRANDS} brands)"
                 + (f": {named}" if named else "")
             )
@@ -110,10 +123,35 @@ def summarise(tables: dict[str, pd.DataFrame], *, top: int = 2) -> list[str]:
             fit = ""
             bm = tables.get("brand_map")
             if bm is not None and (bm["source"] == "owned").any():
-                fit = f" (Procrustes disparity {bm.loc[bm['source'] == 'owned', 'disparity'].iloc[0]:.2f})"
-            line = f"brand map, consumer -> owned photos{fit}, moves most: " + ", ".join(
-                f"{r.brand} ({r.displacement:.2f})" for r in moved.head(top).itertuples()
-            )
+                owned = bm[bm["source"] == "owned"].iloc[0]
+                fit = f" (Procrustes disparity {owned['disparity']:.2f}"
+                if "protest_p" in owned and pd.notna(owned["protest_p"]):
+                    fit += f", PROTEST p {format_p(owned['protest_p'])}: {owned['protest_method']}"
+                fit += ")"
+            head = f"brand map, consumer -> owned photos{fit}"
+            share = moved.get("moves_most_share")
+            top_brand = moved.iloc[0]
+            if share is not None and pd.notna(top_brand.get("moves_most_share")):
+                reps = ""
+                sp = tables.get("brand_map_bootstrap")
+                if sp is not None and len(sp):
+                    reps = f" of {int(sp['replicates'].iloc[0])}"
+                ranked = moved.sort_values("moves_most_share", ascending=False)
+                best = ranked.iloc[0]
+                if best["moves_most_share"] >= MOVES_MOST_SHARE:
+                    line = (f"{head}, moves most: {best.brand} ({best.displacement:.2f}, range "
+                            f"{best.displacement_low:.2f}-{best.displacement_high:.2f}; largest in "
+                            f"{100 * best.moves_most_share:.0f} %{reps} bootstrap replicates)")
+                else:
+                    line = (f"{head}: no brand moves most in at least {100 * MOVES_MOST_SHARE:.0f} % of the bootstrap "
+                            f"replicates (the rule for naming one); largest displacement " + ", ".join(
+                                f"{r.brand} ({r.displacement:.2f}, range {r.displacement_low:.2f}-"
+                                f"{r.displacement_high:.2f}, largest in {100 * r.moves_most_share:.0f} %)"
+                                for r in moved.head(top).itertuples()))
+            else:
+                line = f"{head}, largest displacement (no bootstrap): " + ", ".join(
+                    f"{r.brand} ({r.displacement:.2f})" for r in moved.head(top).itertuples()
+                )
             far = moved.dropna(subset=["owned_profile_distance"]).sort_values("owned_profile_distance", ascending=False)
             if len(far):
                 line += "; most different attribute profiles: " + ", ".join(
@@ -150,6 +188,9 @@ def compare_study(
     embeddings=None,
     value: str = "yes_rate",
     vectors: str = "cluster",
+    image_attributes: pd.DataFrame | None = None,
+    seed: int = 0,
+    map_replicates: int = MAP_REPLICATES,
 ) -> tuple[dict[str, pd.DataFrame], list[str]]:
     """Run the compare stage: survey join, agreement, brand maps, displacement.
 
@@ -165,6 +206,11 @@ def compare_study(
         image-vector map (left out when either is ``None``).
     value : photo metric column of ``attribute_shares`` (``yes_rate``).
     vectors : which image vectors build the vector map (``cluster``).
+    image_attributes : the long per-image table of the attributes stage, for
+        the bootstrap of the brand maps (left out when ``None``, or with
+        ``map_replicates`` 0).
+    seed : the study seed (PROTEST orderings, bootstrap draws).
+    map_replicates : bootstrap replicates of the brand maps.
 
     Returns
     -------
@@ -209,13 +255,31 @@ def compare_study(
             f"agreement: counts only within {', '.join(too_few)} (fewer than {MIN_TEST_BRANDS} brands each: "
             "no correlations or p-values)"
         )
-    brand_map, loadings, map_notes = brand_maps(metrics)
+    brand_map, loadings, map_notes = brand_maps(metrics, seed=seed)
     notes += map_notes
     vector_map, distances = None, None
     if images is not None and embeddings is not None and len(embeddings.image_ids):
         vector_map, info = brand_vector_map(images, embeddings, vectors=vectors)
         distances = info["distances"]
     displacement = brand_displacement(brand_map, vector_map, distances, metrics)
+    spread = pd.DataFrame(columns=BOOTSTRAP_COLUMNS)
+    boot = None
+    if image_attributes is not None and images is not None and map_replicates > 0 and len(image_attributes):
+        column = "probability" if value == "mean_probability" else "positive"
+        spread, boot, resampled = map_bootstrap(
+            image_attributes, images, brand_map, column=column, replicates=map_replicates, seed=seed
+        )
+        if resampled:
+            notes.append(
+                f"brand map uncertainty: {int(boot['replicates'].iloc[0])} bootstrap replicates, {resampled} "
+                "resampled within brand x source"
+                + ("" if resampled == "posters" else " (no poster ids: photos assumed independent)")
+            )
+    for col in ("displacement_low", "displacement_high", "moves_most_share"):
+        displacement[col] = (
+            boot.set_index("brand")[col].reindex(displacement["brand"]).to_numpy(dtype=float)
+            if boot is not None and len(boot) else np.nan
+        )
     tables = {
         "survey": survey_table,
         "agreement": agreement,
@@ -225,5 +289,6 @@ def compare_study(
             columns=["brand", "category", "source", "n_images", "x", "y", "nearest_brand", "nearest_distance", "vectors"]
         ),
         "brand_displacement": displacement,
+        "brand_map_bootstrap": spread,
     }
     return tables, notes + summarise(tables)
