@@ -36,6 +36,8 @@ KNOWN_TABLES = (
     "brand_map_loadings",
     "brand_vector_map",
     "brand_displacement",
+    "brand_map_bootstrap",
+    "context_stability",
 )
 
 

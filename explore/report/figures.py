@@ -275,12 +275,33 @@ def _percent_formatter():
 # Brand maps
 
 
-def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: str, name: str):
+def _ellipses(p, centres: pd.DataFrame, spread: pd.DataFrame | None, x: str, y: str, prefix: str, colour: str,
+              label: str | None = None):
+    """Draw each brand's 95 % bootstrap ellipse (``brand_map_bootstrap``) around its map position."""
+    if spread is None or spread.empty or f"{prefix}ellipse_width" not in spread:
+        return None
+    from bokeh.models import ColumnDataSource
+
+    m = centres[["brand", x, y]].merge(spread, on="brand").dropna(subset=[x, y, f"{prefix}ellipse_width"])
+    if m.empty:
+        return None
+    src = ColumnDataSource(dict(x=m[x].astype(float), y=m[y].astype(float),
+                                w=m[f"{prefix}ellipse_width"].astype(float), h=m[f"{prefix}ellipse_height"].astype(float),
+                                a=m[f"{prefix}ellipse_angle"].astype(float)))
+    kwargs = {"legend_label": label} if label else {}
+    return p.ellipse("x", "y", width="w", height="h", angle="a", source=src, fill_color=colour, fill_alpha=0.10,
+                     line_color=colour, line_alpha=0.55, line_dash="dashed", **kwargs)
+
+
+def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: str, name: str,
+           spread: pd.DataFrame | None = None):
     """PCA biplot (Gabriel, 1971): brands as points, attributes as arrows from the origin.
 
     Loadings are correlations (at most 1 in length); they are scaled by one
     common factor so the arrows span the brands, which keeps their directions
-    and relative lengths (the usual way to draw a biplot).
+    and relative lengths (the usual way to draw a biplot). With ``spread``
+    (the ``brand_map_bootstrap`` table) each brand gets its 95 % bootstrap
+    ellipse (photos or posters resampled, replicate maps aligned onto this one).
     """
     from bokeh.models import Arrow, ColumnDataSource, HoverTool, LabelSet, VeeHead
     from bokeh.plotting import figure
@@ -319,6 +340,9 @@ def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: 
             p.scatter(vec[:, 0] * scale * 1.35, vec[:, 1] * scale * 1.35, size=1, alpha=0)  # room for the labels
             p.add_layout(LabelSet(x="x1", y="y1", text="attribute", source=arrows, text_color=MUTED,
                                   text_font_size="11px", text_font_style="italic", x_offset=4, y_offset=2))
+    if spread is not None and len(spread) and "source" in spread:
+        _ellipses(p, pts.rename(columns={"pc1": "_x", "pc2": "_y"}), spread[spread["source"] == source_name],
+                  "_x", "_y", "", SOURCE_COLOURS.get(source_name, INK))
     r = p.scatter("x", "y", source=brand_src, size=11, fill_color=SOURCE_COLOURS.get(source_name, INK),
                   line_color="#ffffff")
     p.add_layout(LabelSet(x="x", y="y", text="brand", source=brand_src, text_color=INK, text_font_size="12px",
@@ -330,8 +354,8 @@ def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: 
     return p
 
 
-def displacement_plot(displacement: pd.DataFrame, name: str):
-    """Consumer -> owned arrows per brand on the aligned brand map."""
+def displacement_plot(displacement: pd.DataFrame, name: str, spread: pd.DataFrame | None = None):
+    """Consumer -> owned arrows per brand on the aligned brand map, with 95 % bootstrap ellipses."""
     from bokeh.models import Arrow, ColumnDataSource, HoverTool, LabelSet, NormalHead
     from bokeh.plotting import figure
 
@@ -343,9 +367,19 @@ def displacement_plot(displacement: pd.DataFrame, name: str):
         cx=d["consumer_x"].astype(float), cy=d["consumer_y"].astype(float), ox=d["owned_x"].astype(float),
         oy=d["owned_y"].astype(float), brand=d["brand"].astype(str),
         dist=[f"{v:.2f}" for v in d.get("displacement", pd.Series(np.nan, index=d.index)).astype(float)],
+        dist_range=[("–" if not (np.isfinite(lo) and np.isfinite(hi)) else f"{lo:.2f} to {hi:.2f}")
+                    for lo, hi in zip(d.get("displacement_low", pd.Series(np.nan, index=d.index)).astype(float),
+                                      d.get("displacement_high", pd.Series(np.nan, index=d.index)).astype(float))],
+        most=[("–" if not np.isfinite(v) else f"{100 * v:.0f} %")
+              for v in d.get("moves_most_share", pd.Series(np.nan, index=d.index)).astype(float)],
     ))
     p = figure(name=name, height=380, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset",
                title="consumer → owned position (aligned onto the consumer map)")
+    if spread is not None and len(spread) and "source" in spread:
+        _ellipses(p, d, spread[spread["source"] == "consumer"], "consumer_x", "consumer_y", "aligned_", CONSUMER,
+                  "95 % bootstrap ellipse")
+        _ellipses(p, d, spread[spread["source"] == "owned"], "owned_x", "owned_y", "aligned_", OWNED,
+                  "95 % bootstrap ellipse")
     p.add_layout(Arrow(end=NormalHead(size=9, fill_color=OWNED, line_color=OWNED), source=src, x_start="cx",
                        y_start="cy", x_end="ox", y_end="oy", line_color=MUTED, line_width=1.5))
     c = p.scatter("cx", "cy", source=src, size=11, fill_color=CONSUMER, line_color="#ffffff", legend_label="consumer photos")
@@ -353,7 +387,9 @@ def displacement_plot(displacement: pd.DataFrame, name: str):
                   legend_label="owned photos")
     p.add_layout(LabelSet(x="cx", y="cy", text="brand", source=src, text_color=INK, text_font_size="12px",
                           x_offset=7, y_offset=-6))
-    p.add_tools(HoverTool(renderers=[c, o], tooltips=[("brand", "@brand"), ("displacement", "@dist")]))
+    p.add_tools(HoverTool(renderers=[c, o], tooltips=[("brand", "@brand"), ("displacement", "@dist"),
+                                                       ("95 % bootstrap range", "@dist_range"),
+                                                       ("moves most in", "@most of replicates")]))
     _style(p)
     p.x_range.range_padding = 0.4
     p.y_range.range_padding = 0.15

@@ -131,10 +131,24 @@ def fmt_number(v, digits: int = 3) -> str:
     return str(v)
 
 
+def fmt_p(v) -> str:
+    """A p- or q-value as text: "< 0.001" for tiny values (never "0"), else 3 decimals; "–" when missing."""
+    from explore.compare import format_p
+
+    return format_p(v)
+
+
+def _is_p_column(name: str) -> bool:
+    name = str(name)
+    return name in ("p_value", "q_value") or name.endswith(("_p", "_q"))
+
+
 def html_table(table: pd.DataFrame, columns: list[str] | None = None, limit: int = MAX_HTML_ROWS) -> dict:
     """Rows of formatted cells for the template (escaped there), at most ``limit`` rows."""
     cols = [c for c in (columns or list(table.columns)) if c in table.columns]
-    rows = [[fmt_number(v) for v in row] for row in table[cols].head(limit).itertuples(index=False, name=None)]
+    is_p = [_is_p_column(c) for c in cols]
+    rows = [[fmt_p(v) if p else fmt_number(v) for v, p in zip(row, is_p)]
+            for row in table[cols].head(limit).itertuples(index=False, name=None)]
     numeric = [pd.api.types.is_numeric_dtype(table[c]) and not pd.api.types.is_bool_dtype(table[c]) for c in cols]
     return {"columns": cols, "rows": rows, "numeric": numeric, "total": len(table), "shown": len(rows)}
 
@@ -396,14 +410,16 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
     if out.has("brand_map", "source", "brand", "pc1", "pc2"):
         bm = out.get("brand_map")
         loads = out.get("brand_map_loadings") if out.has("brand_map_loadings", "source", "attribute", "loading_1", "loading_2") else None
+        spread = out.get("brand_map_bootstrap") if out.has("brand_map_bootstrap", "source", "brand") else None
         for k, src in enumerate(s for s in ("consumer", "owned", "survey") if s in set(bm["source"])):
             name = f"biplot_{k}"
-            fig = figures.biplot(bm, loads, src, name)
+            fig = figures.biplot(bm, loads, src, name, spread)
             add(fig)
             if fig is not None:
                 comparison_plots.append({"name": name, "kind": "biplot", "source": src})
     if out.has("brand_displacement", "brand", "consumer_x", "consumer_y", "owned_x", "owned_y"):
-        fig = figures.displacement_plot(out.get("brand_displacement"), "displacement_plot")
+        spread = out.get("brand_map_bootstrap") if out.has("brand_map_bootstrap", "source", "brand") else None
+        fig = figures.displacement_plot(out.get("brand_displacement"), "displacement_plot", spread)
         add(fig)
     if out.has("brand_vector_map", "brand", "source", "x", "y"):
         add(figures.vector_map_plot(out.get("brand_vector_map"), "vector_map_plot"))
@@ -482,6 +498,8 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         gap_family=gap_family,
         attr_missing=out.missing("attribute_shares", "level", "brand", "source", "attribute", "yes_rate", "yes_rate_low", "yes_rate_high"),
         agreement=_agreement(out),
+        context_stability=_stability(out),
+        map_uncertainty=_map_uncertainty(out),
         comparison_plots=comparison_plots,
         compare_missing=out.missing("brand_map", "source", "brand", "pc1", "pc2"),
         displacement=_displacement_table(out),
@@ -740,16 +758,33 @@ def _fmt_cell(column: str, value) -> str:
 
 
 def _agreement(out: OutputFolder):
-    """The agreement table in reading form: one cell per statistic with its p-value."""
+    """The agreement table in reading form: each statistic with its 95 % interval, exact p and BH q.
+
+    Rows with fewer than 5 brands carry counts only (the compare stage leaves
+    their statistics empty); "significant" is Kendall's tau-b after
+    Benjamini-Hochberg over the family named above the table.
+    """
     if not out.has("agreement"):
         return {"missing": out.missing("agreement")}
     t = out.get("agreement")
 
-    def with_p(value_col: str, p_col: str) -> list[str]:
-        if value_col not in t:
-            return ["–"] * len(t)
-        p = t[p_col] if p_col in t else pd.Series(np.nan, index=t.index)
-        return [fmt_number(v) + ("" if fmt_number(q) == "–" else f" (p {fmt_number(q)})") for v, q in zip(t[value_col], p)]
+    def col(name):
+        return t[name] if name in t else pd.Series(np.nan, index=t.index)
+
+    def with_p(stat: str, value_col: str) -> list[str]:
+        cells = []
+        for v, lo, hi, p, q in zip(col(value_col), col(f"{stat}_low"), col(f"{stat}_high"), col(f"{stat}_p"),
+                                   col(f"{stat}_q")):
+            if fmt_number(v) == "–":
+                cells.append("–")
+                continue
+            text = fmt_number(v)
+            if fmt_number(lo) != "–":
+                text += f" [{fmt_number(lo)}, {fmt_number(hi)}]"
+            if fmt_p(p) != "–":
+                text += f" (p {fmt_p(p)}" + (f", q {fmt_p(q)}" if fmt_p(q) != "–" else "") + ")"
+            cells.append(text)
+        return cells
 
     def named(v) -> str:
         return str(v).replace("_", " ")
@@ -760,19 +795,73 @@ def _agreement(out: OutputFolder):
         "compared": [f"{named(a)} vs {named(b)}" for a, b in zip(t.get("metric_a", ""), t.get("metric_b", ""))],
         "brands": t.get("n_brands", np.nan),
         "pairs ranked alike": [("–" if fmt_number(v) == "–" else f"{100 * float(v):.0f} %") for v in t.get("concordant_share", np.nan)],
-        "Kendall tau": with_p("kendall_tau", "kendall_p"),
-        "Spearman rho": with_p("spearman_rho", "spearman_p"),
-        "Pearson r": with_p("pearson_r", "pearson_p"),
+        "Kendall tau": with_p("kendall", "kendall_tau"),
+        "Spearman rho": with_p("spearman", "spearman_rho"),
+        "Pearson r": with_p("pearson", "pearson_r"),
+        "significant (BH)": [bool(v) if pd.notna(v) else False for v in col("significant")],
         "note": t.get("note", "").fillna("") if "note" in t else "",
     })
-    return {"missing": "", "table": html_table(view)}
+    families = sorted({str(f) for f in t.get("family", pd.Series(dtype=str)).fillna("") if str(f)})
+    methods = sorted({str(f) for f in t.get("p_method", pd.Series(dtype=str)).fillna("") if str(f)})
+    return {"missing": "", "table": html_table(view), "families": families, "methods": methods,
+            "significant": int(sum(bool(v) for v in col("significant") if pd.notna(v))),
+            "tested": int(col("kendall_p").notna().sum())}
+
+
+def _map_uncertainty(out: OutputFolder) -> dict:
+    """Caption texts for the brand maps: bootstrap ellipses, PROTEST per alignment, the "moves most" rule."""
+    from explore.compare import MOVES_MOST_SHARE
+
+    texts = {"ellipses": "", "protest": "", "moves": ""}
+    if out.has("brand_map_bootstrap", "replicates", "resampled") and len(out.get("brand_map_bootstrap")):
+        sp = out.get("brand_map_bootstrap")
+        what = "posters" if (sp["resampled"] == "posters").any() else "photos (no poster ids: photos assumed independent)"
+        texts["ellipses"] = (f"Dashed ellipses: the 95 % region of each brand's position over "
+                             f"{int(sp['replicates'].iloc[0])} bootstrap replicates ({what} resampled within brand × "
+                             "source, each replicate map aligned onto the one shown). Overlapping ellipses do not by "
+                             "themselves mean two brands are alike or different.")
+    if out.has("brand_map", "source", "protest_p"):
+        bm = out.get("brand_map")
+        parts = []
+        for src in ("owned", "survey"):
+            rows = bm[(bm["source"] == src) & bm["protest_p"].notna()]
+            if len(rows):
+                r = rows.iloc[0]
+                parts.append(f"{src} vs consumer map: disparity {fmt_number(r['disparity'], 2)}, "
+                             f"PROTEST p {fmt_p(r['protest_p'])} ({r.get('protest_method', '')})")
+        if parts:
+            texts["protest"] = ("PROTEST (Jackson 1995) asks whether two maps agree more than maps of shuffled brand "
+                                "labels would: " + "; ".join(parts) + ".")
+    if out.has("brand_displacement", "moves_most_share"):
+        d = out.get("brand_displacement").dropna(subset=["moves_most_share"])
+        if len(d):
+            top = d.sort_values("moves_most_share", ascending=False).iloc[0]
+            rule = f"a brand is said to move most only when it does so in at least {100 * MOVES_MOST_SHARE:.0f} % of the replicates"
+            if top["moves_most_share"] >= MOVES_MOST_SHARE:
+                texts["moves"] = f"{top['brand']} moves most in {100 * top['moves_most_share']:.0f} % of the replicates ({rule})."
+            else:
+                texts["moves"] = (f"No brand moves most reliably: the most frequent, {top['brand']}, does in "
+                                  f"{100 * top['moves_most_share']:.0f} % of the replicates ({rule}).")
+    return texts
+
+
+def _stability(out: OutputFolder) -> str:
+    """One sentence on how the contexts change with the seed (context_stability)."""
+    if not out.has("context_stability", "ari", "refit_seed"):
+        return ""
+    r = out.get("context_stability").iloc[0]
+    ari = fmt_number(r.get("ari"), 2)
+    return (f"Stability: a refit with another seed ({r.get('method', '')}) found {fmt_number(r.get('refit_contexts'))} "
+            f"contexts against {fmt_number(r.get('main_contexts'))}; on the {fmt_number(r.get('both_assigned'))} photos "
+            f"assigned in both, the adjusted Rand index is {ari} (1 = the same grouping, 0 = chance). "
+            "Small contexts and their names may change between runs.")
 
 
 def _displacement_table(out: OutputFolder):
     if not out.has("brand_displacement", "brand"):
         return None
-    cols = ["brand", "category", "displacement", "survey_displacement", "owned_rank_gap", "survey_rank_gap",
-            "vector_distance", "vector_displacement"]
+    cols = ["brand", "category", "displacement", "displacement_low", "displacement_high", "moves_most_share",
+            "survey_displacement", "owned_rank_gap", "survey_rank_gap", "vector_distance", "vector_displacement"]
     return html_table(out.get("brand_displacement"), cols)
 
 
@@ -790,7 +879,13 @@ def _brand_view_data(out: OutputFolder, brands: list[str], bc, points: pd.DataFr
             part = bc[bc["source"] == src] if "source" in bc else (bc if src == "all" else bc.iloc[0:0])
             for rec in part.to_dict("records"):
                 b = rec["brand"]
-                if b not in view or int(rec["context_id"]) < 0:  # "unassigned" is not a context to index
+                if b not in view:
+                    continue
+                if int(rec["context_id"]) < 0:  # "unassigned": its own row, no index (it is not a context)
+                    view[b].setdefault("unassigned", []).append({
+                        "source": src, "count": _clean(rec.get("count")), "n": _clean(rec.get("brand_n")),
+                        "share": _clean(rec.get("share")),
+                    })
                     continue
                 view[b]["contexts"].append({
                     "source": src,

@@ -429,6 +429,25 @@
       row.appendChild(indexChip(c.index));
       box.appendChild(row);
     });
+    // Photos in no context: a row of their own (no index), with advice when they are many.
+    var un = (view.unassigned || []).filter(function (u) { return u.source === "all"; })[0];
+    if (un && un.count) {
+      var urow = el("div", "bv-row bv-unassigned");
+      urow.appendChild(el("div", "bv-name", "unassigned (in no context)"));
+      var ubox = el("div");
+      ubox.appendChild(el("div", "bv-share", pct(un.share) + " · " + photos(un.count)));
+      var usrc = (view.unassigned || []).filter(function (u) { return u.source !== "all"; })
+        .map(function (u) { return u.source + "\u00a0" + (u.share === null ? "–" : Math.round(100 * u.share) + "\u00a0%"); });
+      if (usrc.length) ubox.appendChild(el("div", "bv-share", usrc.join(" · ")));
+      urow.appendChild(ubox);
+      urow.appendChild(el("div"));
+      box.appendChild(urow);
+      if (un.share !== null && un.share > 0.3) {
+        box.appendChild(el("p", "fine bv-advice", "More than 30 % of this brand's photos fit no context, so the " +
+          "shares above describe only part of its photos. More photos per brand, or a smaller minimum context " +
+          "size (contexts.min_cluster_size), usually assign more."));
+      }
+    }
     fillThumbs(box);
 
     ["signature", "unexpected"].forEach(function (key) {
