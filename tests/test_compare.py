@@ -689,8 +689,10 @@ def test_vector_map_uses_cosine_distances_of_mean_vectors():
     assert any("most different: Brio" in n for n in notes)
 
 
-def test_summary_names_best_and_worst_attributes(tmp_path):
-    consumer = random_profiles(61)
+def test_summary_names_best_and_worst_attributes_only_with_enough_brands(tmp_path):
+    rng = np.random.default_rng(61)
+    five = ["Gala", "Hale", "Iris", "Jade", "Kilo"]  # one category ("other") of 5 brands: 10 pairs
+    consumer = {b: {a: float(rng.uniform(0.05, 0.95)) for a in ATTRIBUTES} for b in five}
     rows = []
     for b, per in consumer.items():
         for a, v in per.items():
@@ -702,9 +704,20 @@ def test_summary_names_best_and_worst_attributes(tmp_path):
     line = next(n for n in notes if n.startswith("agreement consumer photos vs survey"))
     print(line)
     best, worst = line.split("; worst ")
-    assert "sincere (0/6 pairs)" in worst and "sincere" not in best
+    assert "sincere (0/10 pairs)" in worst and "sincere" not in best
     per = compare.attribute_agreement(tables["agreement"], "consumer_share", "survey_score")
     assert per.iloc[-1]["attribute"] == "sincere" and per.iloc[0]["concordant_share"] == 1.0
+    # the perfect agreements of 5 brands: exact p = 2/120 each, BH over the 5 x 3 family
+    assert any(n.startswith("agreement tests:") and "of 15 significant" in n for n in notes)
+
+    # 3 brands per category (pooled 6 brands, 6 pairs): counts only, no "best" or "worst"
+    consumer = random_profiles(61)
+    write_survey(path, [f"{b},{a},{(-v if a == 'sincere' else v) * 10:.4f}" for b, per in consumer.items()
+                        for a, v in per.items()])
+    _, notes = compare.compare_study(make_shares(consumer), survey=compare.read_survey(path))
+    line = next(n for n in notes if n.startswith("agreement consumer photos vs survey"))
+    assert "counts only" in line and "best" not in line.split(":", 1)[1].replace("best/worst", "")
+    assert "worst " not in line.replace("best/worst", "")
 
 
 def test_profile_distance_is_rms_of_standardised_profile_differences():

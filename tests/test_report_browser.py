@@ -250,7 +250,12 @@ def test_brand_view_follows_the_picker(opened, synthetic_report):
     assert opened.page.locator(".bv-brand").first.inner_text() == brand
     bc = pd.read_parquet(out / "brand_contexts.parquet")
     rows = bc[(bc["brand"] == brand) & (bc["source"] == "all") & (bc["context_id"] >= 0)]
-    assert opened.page.locator("#bv-contexts .bv-row").count() == len(rows)
+    assert opened.page.locator("#bv-contexts .bv-row:not(.bv-unassigned)").count() == len(rows)
+    # photos in no context: a row of their own, with advice above 30 %
+    un = bc[(bc["brand"] == brand) & (bc["source"] == "all") & (bc["context_id"] < 0)]
+    has_un = len(un) > 0 and int(un["count"].iloc[0]) > 0
+    assert opened.page.locator("#bv-contexts .bv-unassigned").count() == int(has_un)
+    assert opened.page.locator("#bv-contexts .bv-advice").count() == int(has_un and float(un["share"].iloc[0]) > 0.3)
     top = rows.sort_values("share", ascending=False).iloc[0]
     assert opened.page.locator("#bv-contexts .bv-index").first.inner_text() == f"{top['index']:.0f}"
     shoot(opened.page, "#brand-view", "synthetic-brand-view.png")

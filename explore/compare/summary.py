@@ -25,7 +25,8 @@ def attribute_agreement(agreement: pd.DataFrame, metric_a: str, metric_b: str) -
     Returns
     -------
     DataFrame with ``attribute``, ``concordant``, ``pairs``, ``ties``,
-    ``n_brands`` (brands behind the pooled pairs), ``concordant_share``,
+    ``n_brands`` (brands behind the pooled pairs), ``fewest_brands`` (in
+    the smallest category pooled), ``concordant_share``,
     sorted from best to worst agreement.
     """
     rows = agreement[
@@ -34,8 +35,11 @@ def attribute_agreement(agreement: pd.DataFrame, metric_a: str, metric_b: str) -
         & (agreement["category"] != ALL_CATEGORIES)
     ]
     if rows.empty:
-        return pd.DataFrame(columns=["attribute", "concordant", "pairs", "ties", "n_brands", "concordant_share"])
-    pooled = rows.groupby("attribute", sort=True)[["concordant", "pairs", "ties", "n_brands"]].sum().reset_index()
+        return pd.DataFrame(columns=["attribute", "concordant", "pairs", "ties", "n_brands", "fewest_brands",
+                                     "concordant_share"])
+    pooled = rows.groupby("attribute", sort=True)[["concordant", "pairs", "ties", "n_brands"]].sum()
+    pooled["fewest_brands"] = rows.groupby("attribute", sort=True)["n_brands"].min()
+    pooled = pooled.reset_index()
     pooled = pooled[pooled["pairs"] > 0]
     pooled["concordant_share"] = pooled["concordant"] / pooled["pairs"]
     return pooled.sort_values(["concordant_share", "attribute"], ascending=[False, True]).reset_index(drop=True)
@@ -88,10 +92,11 @@ def summarise(tables: dict[str, pd.DataFrame], *, top: int = 2) -> list[str]:
 
             words = f"agreement {_METRIC_WORDS[a]} vs {_METRIC_WORDS[b]} (brand pairs ranked alike)"
             # "best" / "worst" only where an attribute rests on enough brands and pairs
-            enough = (per["n_brands"] >= MIN_TEST_BRANDS) & (per["pairs"] >= MIN_SUMMARY_PAIRS)
+            # (every category pooled must have MIN_TEST_BRANDS brands: pairs within a category of 3 say little)
+            enough = (per["fewest_brands"] >= MIN_TEST_BRANDS) & (per["pairs"] >= MIN_SUMMARY_PAIRS)
             if not enough.all() or per["concordant_share"].nunique() == 1:
                 why = "" if enough.all() else (
-                    f" (counts only: best/worst needs at least {MIN_TEST_BRANDS} brands and "
+                    f" (counts only: best/worst needs at least {MIN_TEST_BRANDS} brands per category and "
                     f"{MIN_SUMMARY_PAIRS} pairs per attribute)"
                 )
                 alike = "" if len(per) == 1 or not enough.all() else "alike for every attribute: "

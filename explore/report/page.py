@@ -815,11 +815,12 @@ def _map_uncertainty(out: OutputFolder) -> dict:
     texts = {"ellipses": "", "protest": "", "moves": ""}
     if out.has("brand_map_bootstrap", "replicates", "resampled") and len(out.get("brand_map_bootstrap")):
         sp = out.get("brand_map_bootstrap")
-        what = "posters" if (sp["resampled"] == "posters").any() else "photos (no poster ids: photos assumed independent)"
+        what = ("posters resampled within brand × source" if (sp["resampled"] == "posters").any()
+                else "photos resampled within brand × source; no poster ids, so photos are assumed independent")
         texts["ellipses"] = (f"Dashed ellipses: the 95 % region of each brand's position over "
-                             f"{int(sp['replicates'].iloc[0])} bootstrap replicates ({what} resampled within brand × "
-                             "source, each replicate map aligned onto the one shown). Overlapping ellipses do not by "
-                             "themselves mean two brands are alike or different.")
+                             f"{int(sp['replicates'].iloc[0])} bootstrap replicates ({what}; each replicate map "
+                             "aligned onto the one shown). Overlapping ellipses do not by themselves mean two "
+                             "brands are alike or different.")
     if out.has("brand_map", "source", "protest_p"):
         bm = out.get("brand_map")
         parts = []
