@@ -235,12 +235,16 @@ def test_agreement_family_is_corrected_by_benjamini_hochberg():
 
     rng = np.random.default_rng(4)
     brands = [f"B{k}" for k in range(7)]
+    x = np.arange(7.0)
     rows = []
     for k, attribute in enumerate([f"a{k}" for k in range(12)]):
-        base = rng.normal(size=7)
-        # two attributes agree strongly, the rest are noise
-        owned = base + (0.05 if k < 2 else 3.0) * rng.normal(size=7)
-        for b, c, o in zip(brands, base, owned):
+        if k < 2:
+            owned = x  # perfect agreement: exact p = 2 / 7!
+        elif k == 2:
+            owned = np.array([1, 0, 3, 2, 5, 4, 6.0])  # three swaps: Kendall exact p = 0.030 (p < 0.05, q > 0.05)
+        else:
+            owned = rng.permutation(7).astype(float)  # noise
+        for b, c, o in zip(brands, x, owned):
             rows.append({"category": "c", "brand": b, "attribute": attribute,
                          "consumer_share": c, "owned_share": o, "survey_score": np.nan})
     metrics = pd.DataFrame(rows)
@@ -254,7 +258,7 @@ def test_agreement_family_is_corrected_by_benjamini_hochberg():
     assert table["family"].str.contains("m = 12").all()
     # a row significant before correction but not after exists, and is not flagged
     raw_only = (table["kendall_p"] <= 0.05) & (table["kendall_q"] > 0.05)
-    assert (~table.loc[raw_only, "significant"]).all()
+    assert raw_only.any() and (~table.loc[raw_only, "significant"]).all()
     assert table.loc[table["attribute"].isin(["a0", "a1"]), "significant"].all()
 
 
@@ -801,3 +805,13 @@ def test_demo_survey_agrees_where_planted_and_the_contradicted_brand_stands_out(
     source_brand = brands.loc[brands["consumer_favours"].fillna("") != "", "brand"].tolist()
     assert len(source_brand) == 1
     assert disp["vector_distance"].idxmax() == source_brand[0]
+
+
+def test_p_values_are_never_printed_as_zero():
+    # Common practice (e.g. APA style): report p below 0.001 as "< 0.001", never "p = 0".
+    assert compare.format_p(0.0) == "< 0.001" and compare.format_p(3e-12) == "< 0.001"
+    assert compare.format_p(0.0123) == "0.012" and compare.format_p(float("nan")) == "–"
+    from explore.report.page import html_table
+
+    cells = html_table(pd.DataFrame({"p_value": [1e-15, 0.2], "kendall_q": [0.0, 0.04], "share": [0.0, 0.5]}))["rows"]
+    assert cells[0][:2] == ["< 0.001", "< 0.001"] and cells[1][:2] == ["0.200", "0.040"]

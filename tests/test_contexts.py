@@ -237,6 +237,26 @@ def test_poster_permutation_holds_its_level_where_fisher_does_not():
     assert poster_hits / tests <= 0.12
 
 
+def test_stability_ari_is_on_images_assigned_in_both(monkeypatch):
+    # By definition (Hubert and Arabie 1985) identical partitions have ARI 1:
+    # the refit below agrees with the main fit on every image both assign, and
+    # differs only where the main fit left images unassigned, so ari must be
+    # exactly 1 and the stricter ari_with_unassigned below 1.
+    main = np.array([1, 1, 1, 2, 2, 2, 3, 3, -1, -1, -1])
+    other = np.array([2, 2, 2, 1, 1, 1, 3, 3, 1, 2, 3])  # renumbered, plus the main fit's unassigned
+
+    def fake_fit(vectors, settings, seed=0):
+        return ctx.ContextFit(other[: len(vectors)], np.ones(len(vectors)), np.zeros((len(vectors), 2)),
+                              np.zeros((len(vectors), 2)))
+
+    monkeypatch.setattr(ctx, "find_contexts", fake_fit)
+    st = ctx.context_stability(np.ones((11, 4)), main, ContextSettings(), seed=3).iloc[0]
+    assert (st["refit_seed"], st["both_assigned"], st["main_contexts"], st["refit_contexts"]) == (4, 8, 3, 3)
+    assert st["ari"] == pytest.approx(1.0, abs=1e-12)
+    assert st["ari_with_unassigned"] < 0.9
+    assert st["main_unassigned_share"] == pytest.approx(3 / 11)
+
+
 def _finding_table() -> pd.DataFrame:
     """Hand-made brand x context rows (counts chosen so every rule is exercised)."""
     rows = [
