@@ -644,8 +644,9 @@ def cluster_permutation_pvalues(
         return hits / splits
     rng = np.random.default_rng(seed)
     hits = np.zeros(counts.shape[1])
-    for start in range(0, permutations, 500):
-        b = min(500, permutations - start)
+    step = max(1, min(500, 4_000_000 // u))  # splits per block: about 32 MB of membership rows at most
+    for start in range(0, permutations, step):
+        b = min(step, permutations - start)
         order = np.argsort(rng.random((b, u)), axis=1)[:, :m]
         member = np.zeros((b, u))
         np.put_along_axis(member, order, 1.0, axis=1)

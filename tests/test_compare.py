@@ -815,3 +815,32 @@ def test_p_values_are_never_printed_as_zero():
 
     cells = html_table(pd.DataFrame({"p_value": [1e-15, 0.2], "kendall_q": [0.0, 0.04], "share": [0.0, 0.5]}))["rows"]
     assert cells[0][:2] == ["< 0.001", "< 0.001"] and cells[1][:2] == ["0.200", "0.040"]
+
+
+@pytest.mark.slow
+def test_demo_report_prints_no_p_value_from_fewer_than_5_brands_and_shows_stability(demo_run):
+    # The demo has 3 brands per category (6 in all): within-category agreement
+    # rows are counts only; the pooled 6-brand rows carry exact p-values.
+    import html
+    import json
+    import re
+
+    agreement = pd.read_parquet(demo_run / "agreement.parquet")
+    small = agreement["n_brands"] < 5
+    assert small.any() and agreement.loc[small, ["kendall_p", "spearman_p", "pearson_p"]].isna().all().all()
+    assert agreement.loc[~small, "p_method"].str.startswith("exact permutation").all()
+    text = (demo_run / "report.html").read_text(encoding="utf-8")
+    assert not re.search(r"\bp 0(?![.\d])", text)  # "p 0" alone; "p 0.244" is fine
+    section = text[text.index('id="comparisons"'):]
+    for row in re.findall(r"<tr>(.*?)</tr>", section, re.S):
+        cells = [html.unescape(re.sub("<.*?>", "", c)).strip() for c in re.findall(r"<td[^>]*>(.*?)</td>", row, re.S)]
+        if len(cells) > 7 and cells[3].isdigit() and int(cells[3]) < 5:
+            assert not any("(p " in c for c in cells), cells
+    notes = json.loads((demo_run / "run.json").read_text(encoding="utf-8"))["notes"]
+    stability = [n for n in notes if n.startswith("contexts: stability:")]
+    print(stability)
+    assert stability and "adjusted Rand index" in stability[0]
+    assert "adjusted Rand index is" in text
+    protest_line = next(n for n in notes if n.startswith("compare: brand map, consumer -> owned"))
+    print(protest_line)
+    assert "PROTEST p" in protest_line and "bootstrap replicates" in protest_line

@@ -194,8 +194,8 @@ def map_bootstrap(
     """
     empty = (pd.DataFrame(columns=BOOTSTRAP_COLUMNS),
              pd.DataFrame(columns=["brand", "displacement_low", "displacement_high", "moves_most_share", "replicates"]))
-    need = {"consumer", "owned"}
-    if brand_map is None or brand_map.empty or not need <= set(brand_map["source"]):
+    need = ("consumer", "owned")  # a tuple: the draws must not depend on set order (hash seed)
+    if brand_map is None or brand_map.empty or not set(need) <= set(brand_map["source"]):
         return (*empty, "")
     main = {s: brand_map[brand_map["source"] == s].set_index("brand") for s in need}
     brands = sorted(set(main["consumer"].index) & set(main["owned"].index))
