@@ -187,6 +187,11 @@ def build_parser() -> argparse.ArgumentParser:
         "network needed to open it.",
     )
     p.add_argument("study", type=Path, help="study file (.toml), or the output folder itself")
+    p.add_argument("--pdf", action="store_true",
+                   help="also print the report to report.pdf with headless Chromium (/usr/bin/chromium or "
+                   "EXPLORE_CHROMIUM); A4 unless --paper says otherwise")
+    p.add_argument("--paper", choices=["A4", "Letter", "A4-landscape", "Letter-landscape"], default="A4",
+                   help="paper size and orientation of the PDF (default A4 portrait)")
     p.set_defaults(func=cmd_report)
     # --- end report -----------------------------------------------------------------
 
@@ -353,12 +358,23 @@ def _run(study_path: Path, args) -> int:
         f"{summary.images_skipped} skipped, {summary.images_embedded} embedded this run"
     )
     say("time per stage: " + ", ".join(f"{k} {v:.1f}s" for k, v in summary.stage_seconds.items()))
+    if summary.notes:
+        say("method notes (also in the report's Method section):")
     for note in summary.notes:
-        say(note)
+        say(f"  {note}")
     say(f"outputs: {summary.output}")
     if summary.report:
         say(f"report: {summary.report}")
+        _print_closing_summary(summary.output)
     return 0
+
+
+def _print_closing_summary(folder) -> None:
+    """The report's findings and advice: the same sentences the report opens with."""
+    from explore.report import closing_summary
+
+    for line in closing_summary(folder):
+        say(line)
 
 
 def cmd_run(args) -> int:
@@ -464,6 +480,16 @@ def cmd_report(args) -> int:
         say(f"explore: error: {exc}", file=sys.stderr)
         return 2
     say(f"report: {path}")
+    _print_closing_summary(path.parent)
+    if args.pdf:
+        from explore.report import write_pdf
+
+        try:
+            pdf = write_pdf(path, paper=args.paper)
+        except ReportError as exc:
+            say(f"explore: error: {exc}", file=sys.stderr)
+            return 2
+        say(f"pdf: {pdf}")
     return 0
 # --- end report -----------------------------------------------------------------------
 

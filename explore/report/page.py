@@ -26,7 +26,12 @@ import numpy as np
 import pandas as pd
 
 from explore.report import colours, figures
+from explore.report.advice import advice_lines
 from explore.report.data import OutputFolder
+from explore.report.findings import findings_basis, findings_table
+from explore.report.tables import cell as table_cell
+from explore.report.tables import label as column_label
+from explore.report.tables import readable
 from explore.report.thumbnails import ThumbnailChoice, choose_thumbnail_ids, thumbnails_for
 
 #: Per-image tables: too large to embed as they are; the page offers the plotted
@@ -144,13 +149,8 @@ def _is_p_column(name: str) -> bool:
 
 
 def html_table(table: pd.DataFrame, columns: list[str] | None = None, limit: int = MAX_HTML_ROWS) -> dict:
-    """Rows of formatted cells for the template (escaped there), at most ``limit`` rows."""
-    cols = [c for c in (columns or list(table.columns)) if c in table.columns]
-    is_p = [_is_p_column(c) for c in cols]
-    rows = [[fmt_p(v) if p else fmt_number(v) for v, p in zip(row, is_p)]
-            for row in table[cols].head(limit).itertuples(index=False, name=None)]
-    numeric = [pd.api.types.is_numeric_dtype(table[c]) and not pd.api.types.is_bool_dtype(table[c]) for c in cols]
-    return {"columns": cols, "rows": rows, "numeric": numeric, "total": len(table), "shown": len(rows)}
+    """Rows of readable cells (human headers, units, rounding) for the template, at most ``limit`` rows."""
+    return readable(table, columns, limit)
 
 
 def encoder_quality(encoder_id: str) -> dict:
@@ -394,6 +394,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
             attr_sections.append({
                 "validation": _attribute_validation(out, attr, shares),
                 "name": attr,
+                "anchor": f"attr-{k}",
                 "chart": name if chart is not None else None,
                 "positive": _split_prompts(d.get("positive_descriptions", d.get("positive_prompts", ""))),
                 "negative": _split_prompts(d.get("negative_descriptions", d.get("negative_prompts", ""))),
@@ -465,6 +466,10 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
     }
 
     overview = _overview(run, out, usable, images_all, choice, thumbs, notes)
+    findings = out.get("findings")
+    if findings is None:
+        findings = findings_table(out.tables)
+    findings_section = _findings_section(out, findings, brands, brand_category, [a["name"] for a in attr_sections])
     contexts_section = _contexts_section(out, context_list, bc_all, brands)
 
     from jinja2 import Environment, PackageLoader, select_autoescape
@@ -485,6 +490,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
     variables = dict(
         study=run.get("study") or out.folder.name,
         overview=overview,
+        findings=findings_section,
         brands=brands,
         categories=categories,
         sources=sources,
@@ -694,6 +700,36 @@ def _overview(run: dict, out: OutputFolder, usable: pd.DataFrame, images_all: pd
     }
 
 
+def _findings_section(out: OutputFolder, findings: pd.DataFrame, brands: list[str], brand_category: dict,
+                      attribute_names: list[str]) -> dict:
+    """Per brand: its findings with their evidence links, then what they rest on and the advice."""
+    anchors = {a: f"attr-{k}" for k, a in enumerate(attribute_names)}
+    blocks = []
+    for brand in brands:
+        rows = findings[findings["brand"].astype(str) == brand].sort_values("rank") if len(findings) else findings
+        items = []
+        for rec in rows.to_dict("records"):
+            evidence = str(rec.get("evidence") or "")
+            item = {"rank": int(rec["rank"]), "kind": str(rec["kind"]), "sentence": str(rec["sentence"]),
+                    "value": _clean(rec.get("value")), "test": str(rec.get("test") or ""),
+                    "estimand": str(rec.get("estimand") or ""), "context_id": None, "source": "all", "anchor": ""}
+            if evidence.startswith("photos:"):
+                item["context_id"] = _clean(rec.get("context_id"))
+                src = str(rec.get("source") or "all")
+                item["source"] = src if src in ("consumer", "owned") else "all"
+                item["anchor"] = f"context-{int(rec['context_id'])}"
+            elif evidence.startswith("chart:"):
+                item["anchor"] = anchors.get(str(rec.get("attribute")), "attributes")
+            items.append(item)
+        blocks.append({"brand": brand, "category": str(brand_category.get(brand, "")), "findings": items})
+    return {
+        "blocks": blocks,
+        "basis": findings_basis(out.tables),
+        "advice": advice_lines(out.tables, out.run, findings),
+        "total": len(findings),
+    }
+
+
 def _contexts_section(out: OutputFolder, context_list: list[dict], bc_all, brands: list[str]) -> dict:
     cards = []
     for c in context_list:
@@ -711,10 +747,14 @@ def _contexts_section(out: OutputFolder, context_list: list[dict], bc_all, brand
                 })
         cards.append({**c, "indices": indices})
     lists = []
+    tested = _tests_sentences(out)
     for key, title in (("signature_contexts", "Signature contexts"), ("unexpected_contexts", "Unexpected contexts")):
         table = out.get(key)
         if table is None or not len(table):
-            lists.append({"key": key, "title": title, "missing": out.missing(key), "rows": []})
+            missing = out.missing(key)
+            if table is not None and not len(table):
+                missing = tested[key]
+            lists.append({"key": key, "title": title, "missing": missing, "rows": []})
             continue
         preferred = ["brand", "source", "context", "count", "brand_n", "share", "category_share",
                      "index", "q_value", "reason"]
@@ -726,18 +766,51 @@ def _contexts_section(out: OutputFolder, context_list: list[dict], bc_all, brand
         t = table.sort_values(sort_cols, ascending=[True, False][: len(sort_cols)]) if sort_cols else table
         for rec in t.head(MAX_HTML_ROWS).to_dict("records"):
             rows.append({
-                "cells": [_fmt_cell(col, rec.get(col)) for col in cols],
+                "cells": [table_cell(col, rec.get(col), rec.get("brand_n")) for col in cols],
                 "brand": str(rec.get("brand", "")),
                 "context_id": int(rec["context_id"]) if "context_id" in rec and pd.notna(rec["context_id"]) else None,
                 "context": str(rec.get("context", "")),
                 "source": str(rec.get("source", "all") or "all"),
             })
-        lists.append({"key": key, "title": title, "missing": "", "columns": cols, "rows": rows, "total": len(table)})
+        lists.append({"key": key, "title": title, "missing": "", "columns": [column_label(c) for c in cols],
+                      "rows": rows, "total": len(table)})
+    gaps = out.get("source_context_gaps")
     return {
         "cards": cards,
         "lists": lists,
         "missing": "" if context_list else out.missing("contexts", "context_id", "context"),
-        "source_gaps": html_table(out.get("source_context_gaps")) if out.has("source_context_gaps") else None,
+        "source_gaps": html_table(gaps) if out.has("source_context_gaps") else None,
+        "source_gaps_empty": tested["source_context_gaps"] if gaps is not None and not len(gaps) else "",
+    }
+
+
+def _tests_sentences(out: OutputFolder) -> dict[str, str]:
+    """What was tested, for tables that came out empty (a sentence instead of "table is empty")."""
+    ctx = out.get("contexts")
+
+    def setting(name, default):
+        if ctx is not None and f"setting_{name}" in ctx and len(ctx):
+            v = ctx[f"setting_{name}"].iloc[0]
+            return default if pd.isna(v) else v
+        return default
+
+    fdr, min_index, min_count = setting("fdr", 0.05), setting("min_index", 120), setting("min_count", 5)
+    rare, ratio = setting("rare_category_share", 0.05), setting("dominance_ratio", 2)
+    return {
+        "signature_contexts": (
+            f"No brand shows up in any context clearly more than the rest of its category. Tested: every brand and "
+            f"context with a two-sided Fisher exact test against the rest of the category, Benjamini-Hochberg q at most "
+            f"{float(fdr):g}, index at least {float(min_index):.0f} and at least {int(min_count)} photos"
+        ),
+        "unexpected_contexts": (
+            f"None of the signature contexts is unusual for its category. Tested: signature contexts where the "
+            f"category has under {100 * float(rare):.0f} % of its photos, or another category is at least "
+            f"{float(ratio):g} times as present"
+        ),
+        "source_context_gaps": (
+            f"No context differs between a brand's consumer and owned photos. Tested: every brand with both sources, "
+            f"two-sided Fisher exact test, Benjamini-Hochberg q at most {float(fdr):g}, at least {int(min_count)} photos"
+        ),
     }
 
 

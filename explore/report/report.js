@@ -332,6 +332,11 @@
     row.addEventListener("click", go);
     row.addEventListener("keydown", function (ev) { if (ev.key === "Enter") go(); });
   });
+  document.querySelectorAll(".finding-photos").forEach(function (btn) {
+    btn.addEventListener("click", function () {
+      openPhotos(btn.getAttribute("data-brand"), +btn.getAttribute("data-context"), btn.getAttribute("data-source"));
+    });
+  });
   document.querySelectorAll(".show-photos").forEach(function (btn) {
     btn.addEventListener("click", function () { openPhotos(null, +btn.getAttribute("data-context")); });
   });
@@ -553,6 +558,71 @@
       setTimeout(function () { URL.revokeObjectURL(a.href); a.remove(); }, 1000);
     });
   });
+
+  // ------------------------------------------------------------------ charts as images (save, print)
+  function plotView(name) {
+    if (!window.Bokeh || !Bokeh.documents || !Bokeh.documents.length) return null;
+    var model = Bokeh.documents[0].get_model_by_name(name);
+    return model && Bokeh.index ? Bokeh.index.get_one(model) : null;
+  }
+  function chartLayer(name, type) {
+    var view = plotView(name);
+    return view ? view.export(type, type === "png") : null;
+  }
+  function chartPng(name) {
+    var layer = chartLayer(name, "png");
+    return layer ? layer.canvas.toDataURL("image/png") : null;
+  }
+  function chartFileName(name, ext) {
+    var study = (document.getElementById("study-name") || {}).textContent || "report";
+    return (study + "-" + name).replace(/[^A-Za-z0-9._-]+/g, "_").slice(0, 120) + "." + ext;
+  }
+  function saveBlob(blob, filename) {
+    var a = document.createElement("a");
+    a.href = URL.createObjectURL(blob);
+    a.download = filename;
+    document.body.appendChild(a);
+    a.click();
+    setTimeout(function () { URL.revokeObjectURL(a.href); a.remove(); }, 1000);
+  }
+  document.querySelectorAll("button.save-png, button.save-svg").forEach(function (btn) {
+    btn.addEventListener("click", function () {
+      var name = btn.getAttribute("data-chart");
+      var type = btn.classList.contains("save-svg") ? "svg" : "png";
+      var layer = chartLayer(name, type);
+      if (!layer) return;
+      layer.to_blob().then(function (blob) { saveBlob(blob, chartFileName(name, type)); });
+    });
+  });
+  // Printing: each chart is replaced by a picture of itself that scales to the paper (a live
+  // canvas keeps its screen width, and WebGL canvases may print blank).
+  function preparePrint() {
+    var made = 0;
+    document.querySelectorAll(".chart[data-chart]").forEach(function (box) {
+      var name = box.getAttribute("data-chart");
+      var view = plotView(name);
+      if (!view) return;
+      var url;
+      try { url = chartPng(name); } catch (e) { return; }
+      if (!url) return;
+      var img = box.querySelector("img.print-img");
+      if (!img) { img = el("img", "print-img"); img.alt = "chart " + name; box.appendChild(img); }
+      img.src = url;
+      img.style.width = Math.round(view.bbox ? view.bbox.width : 600) + "px";
+      made++;
+    });
+    return made;
+  }
+  window.ExploreReport.chartPng = chartPng;
+  window.ExploreReport.preparePrint = preparePrint;
+  window.addEventListener("beforeprint", preparePrint);
+  (function whenIdle() {
+    if (window.Bokeh && Bokeh.documents && Bokeh.documents.length && Bokeh.documents[0].is_idle) {
+      setTimeout(function () { preparePrint(); document.body.setAttribute("data-print-ready", "1"); }, 0);
+    } else {
+      setTimeout(whenIdle, 100);
+    }
+  })();
 
   // ------------------------------------------------------------------ start
   fillThumbs(document);
