@@ -126,8 +126,13 @@ def context_label(context_id, name) -> str:
     return f"{int(context_id)} · {name}"
 
 
-def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], context_order: list[tuple]):
+def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], context_order: list[tuple], fdr: float = 0.05):
     """Cells coloured by index (diverging around 100 on a log scale), counts on hover.
+
+    Cells significant after correction (BH ``q_value`` at most ``fdr``) get a
+    dark outline and a star; cells that were not tested (``q_value`` NaN: too
+    few photos in the category for the context, see ``min_count``) are grey
+    with a dash, so a strong colour from two photos is not read as a result.
 
     Parameters
     ----------
@@ -147,14 +152,22 @@ def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], conte
     if table.empty:
         return None
     index = table["index"].astype(float).to_numpy()
-    table["color"] = [diverging_index(v) for v in index]
-    table["index_text"] = [("–" if not np.isfinite(v) else f"{v:.0f}") for v in index]
+    q = table["q_value"].astype(float).to_numpy() if "q_value" in table else np.full(len(table), np.nan)
+    tested = np.isfinite(q)
+    significant = tested & (q <= fdr)
+    table["color"] = [diverging_index(v) if t else "#e6e3dd" for v, t in zip(index, tested)]
+    table["index_text"] = [("–" if not (np.isfinite(v) and t) else f"{v:.0f}" + ("*" if s else ""))
+                           for v, t, s in zip(index, tested, significant)]
+    table["judged"] = ["significant after correction" if s else ("tested, not significant" if t else "too few photos to test")
+                       for t, s in zip(tested, significant)]
+    table["outline_alpha"] = [1.0 if s else 0.0 for s in significant]
     table["share_pct"] = (100 * table["share"].astype(float)).round(1)
     table["category_pct"] = (100 * table["category_share"].astype(float)).round(1)
     table["q_text"] = [f"{q:.3g}" for q in table.get("q_value", pd.Series(np.nan, index=table.index)).astype(float)]
-    table["text_color"] = ["#ffffff" if np.isfinite(v) and abs(math.log2(max(v, 1e-9) / 100)) > 1.2 else INK for v in index]
+    table["text_color"] = ["#ffffff" if t and np.isfinite(v) and abs(math.log2(max(v, 1e-9) / 100)) > 1.2 else
+                           (INK if t else MUTED) for v, t in zip(index, tested)]
     cols = ["label", "brand", "context", "color", "index_text", "count", "brand_n", "share_pct", "category_pct",
-            "q_text", "text_color"]
+            "q_text", "text_color", "judged", "outline_alpha"]
     source = ColumnDataSource({c: table[c].tolist() for c in cols})
     cell = 44
     width = max(420, 260 + cell * len(x_factors))
@@ -169,13 +182,14 @@ def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], conte
         x_axis_location="above",
         min_border_right=90,  # the last slanted context name needs room
     )
-    p.rect("label", "brand", 0.94, 0.9, source=source, fill_color="color", line_color=None)
+    p.rect("label", "brand", 0.94, 0.9, source=source, fill_color="color", line_color=INK,
+           line_alpha="outline_alpha", line_width=2)
     p.text("label", "brand", text="index_text", source=source, text_align="center", text_baseline="middle",
            text_font_size="11px", text_color="text_color")
     p.add_tools(HoverTool(tooltips=[
         ("brand", "@brand"), ("context", "@context"), ("index", "@index_text"),
         ("photos", "@count of @brand_n"), ("brand share", "@share_pct %"),
-        ("category share", "@category_pct %"), ("q (BH)", "@q_text"),
+        ("category share", "@category_pct %"), ("q (BH)", "@q_text"), ("judged", "@judged"),
     ]))
     _style(p)
     p.xaxis.major_label_orientation = 0.9

@@ -28,7 +28,7 @@ import pandas as pd
 from explore.report import colours, figures
 from explore.report.advice import advice_lines
 from explore.report.data import OutputFolder
-from explore.report.findings import findings_basis, findings_table
+from explore.report.findings import findings_basis, findings_table, study_fdr
 from explore.report.tables import cell as table_cell
 from explore.report.tables import label as column_label
 from explore.report.tables import readable
@@ -41,6 +41,8 @@ PER_IMAGE_TABLES = ("images", "image_attributes", "image_contexts")
 MAX_HTML_ROWS = 300
 #: Most thumbnails the gallery under the map draws at once.
 GALLERY_LIMIT = 240
+#: Longest side of the larger copies shown in the photo viewer (context exemplars only, so size stays bounded).
+LARGE_PX = 360
 
 
 # --------------------------------------------------------------------------
@@ -317,6 +319,13 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
                 "they appear on the map without a picture."
             )
 
+    # Larger copies for the photo viewer: context exemplars only (a few per context).
+    large: dict[str, str] = {}
+    large_ids = [i for i in dict.fromkeys(exemplar_ids) if i in thumbs]
+    if large_ids and "path" in usable:
+        large_cache = cache_dir / f"thumbnails_{LARGE_PX}.parquet" if cache_dir else None
+        large = thumbnails_for(usable, large_ids, LARGE_PX, large_cache)
+
     # ---- per-point payload (columnar: compact and fast to read in the page)
     brand_ix = {b: i for i, b in enumerate(brands)}
     source_ix = {s: i for i, s in enumerate(sources)}
@@ -361,7 +370,8 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         order = [(c["id"], c["name"]) for c in context_list] or list(
             bc_all.drop_duplicates("context_id").sort_values("context_id")[["context_id", "context"]].itertuples(index=False, name=None)
         )
-        add(figures.context_heatmap(bc_all, [b for b in brands if b in set(bc_all["brand"])] or sorted(set(bc_all["brand"])), order))
+        add(figures.context_heatmap(bc_all, [b for b in brands if b in set(bc_all["brand"])] or sorted(set(bc_all["brand"])), order,
+                                    fdr=study_fdr(out.tables)))
 
     attr_sections = []
     gap_family = ""
@@ -515,6 +525,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         report_js=js,
         data_json=script_json(payload),
         thumbs_json=script_json(thumbs),
+        large_json=script_json(large),
         built_at=datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
     )
     if not models:

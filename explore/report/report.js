@@ -6,6 +6,7 @@
 
   var DATA = JSON.parse(document.getElementById("explore-data").textContent);
   var THUMBS = JSON.parse(document.getElementById("explore-thumbs").textContent);
+  var LARGE = JSON.parse(document.getElementById("explore-large").textContent);
   var P = DATA.points;
   var N = P.id.length;
   var idIndex = {};
@@ -77,8 +78,9 @@
         if (!id) return;
         var src = thumbSrc(id);
         if (!src) return;
-        var img = el("img");
+        var img = el("img", "zoomable");
         img.src = src;
+        img.setAttribute("data-id", id);
         var k = idIndex[id];
         img.alt = k !== undefined ? baseName(P.file[k]) : id;
         img.title = img.alt;
@@ -119,8 +121,9 @@
       var src = P.t[k] ? thumbSrc(P.id[k]) : null;
       if (!src) continue;
       var fig = el("figure");
-      var img = el("img");
+      var img = el("img", "zoomable");
       img.src = src;
+      img.setAttribute("data-id", P.id[k]);
       img.alt = baseName(P.file[k]);
       img.title = P.file[k] + "\n" + (DATA.brands[P.b[k]] || "") + " · " + (DATA.sources[P.s[k]] || "") + " · " + contextName(P.c[k]);
       fig.appendChild(img);
@@ -323,7 +326,56 @@
   function closePhotos() { dialog.hidden = true; }
   document.getElementById("photo-dialog-close").addEventListener("click", closePhotos);
   dialog.addEventListener("click", function (ev) { if (ev.target === dialog) closePhotos(); });
-  document.addEventListener("keydown", function (ev) { if (ev.key === "Escape" && !dialog.hidden) closePhotos(); });
+  document.addEventListener("keydown", function (ev) {
+    if (ev.key !== "Escape") return;
+    if (!lightbox.hidden) { closeLightbox(); return; }
+    if (!dialog.hidden) closePhotos();
+  });
+
+  // ------------------------------------------------------------------ photo viewer (click a thumbnail)
+  var lightbox = document.getElementById("lightbox");
+  var lightboxReturn = null;
+  function openLightbox(id) {
+    var k = idIndex[id];
+    var large = LARGE[id];
+    var src = large ? "data:image/jpeg;base64," + large : thumbSrc(id);
+    if (!src) return;
+    var img = document.getElementById("lightbox-img");
+    img.src = src;
+    img.alt = k !== undefined ? baseName(P.file[k]) : id;
+    img.className = large ? "large" : "small";
+    document.getElementById("lightbox-title").textContent = k !== undefined ? baseName(P.file[k]) : id;
+    var facts = document.getElementById("lightbox-facts");
+    facts.textContent = "";
+    function fact(name, value) { facts.appendChild(el("dt", null, name)); facts.appendChild(el("dd", null, value)); }
+    if (k !== undefined) {
+      fact("brand", DATA.brands[P.b[k]] !== undefined ? DATA.brands[P.b[k]] : "–");
+      fact("category", DATA.categories[P.k[k]] !== undefined ? DATA.categories[P.k[k]] : "–");
+      fact("source", DATA.sources[P.s[k]] !== undefined ? DATA.sources[P.s[k]] + " photo" : "–");
+      fact("context", contextName(P.c[k]));
+      DATA.attributes.forEach(function (a, j) {
+        var v = P.p[j] ? P.p[j][k] : null;
+        if (v !== null && v !== undefined) fact(a, "probability " + v.toFixed(2));
+      });
+      fact("file", P.file[k]);
+    }
+    document.getElementById("lightbox-size").textContent = large
+      ? "A larger copy is embedded for context exemplars."
+      : "Only a small thumbnail of this photo is in the file; the original is in the study's image folder.";
+    lightboxReturn = document.activeElement;
+    lightbox.hidden = false;
+    document.getElementById("lightbox-close").focus();
+  }
+  function closeLightbox() {
+    lightbox.hidden = true;
+    if (lightboxReturn && lightboxReturn.focus) lightboxReturn.focus();
+  }
+  document.getElementById("lightbox-close").addEventListener("click", closeLightbox);
+  lightbox.addEventListener("click", function (ev) { if (ev.target === lightbox) closeLightbox(); });
+  document.addEventListener("click", function (ev) {
+    var t = ev.target;
+    if (t && t.tagName === "IMG" && t.classList.contains("zoomable") && t.getAttribute("data-id")) openLightbox(t.getAttribute("data-id"));
+  });
   document.querySelectorAll(".photo-row").forEach(function (row) {
     function go() {
       var c = row.getAttribute("data-context");
@@ -614,6 +666,7 @@
     return made;
   }
   window.ExploreReport.chartPng = chartPng;
+  window.ExploreReport.openLightbox = openLightbox;
   window.ExploreReport.preparePrint = preparePrint;
   window.addEventListener("beforeprint", preparePrint);
   (function whenIdle() {
