@@ -146,7 +146,7 @@ class ReportSettings:
     """The self-contained HTML report."""
 
     thumbnail_px: int = 112
-    max_thumbnails: int = 20000
+    max_thumbnails: int = 5000  # keeps a 100k-image report under 30 MB (benchmarks/report_size.py)
 
 
 @dataclass

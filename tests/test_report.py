@@ -100,7 +100,7 @@ def test_every_usable_image_gets_a_small_thumbnail(built):
     # run.json of the fixture asks for 96 px thumbnails.
     for b64 in list(thumbs.values())[:10]:
         im = Image.open(io.BytesIO(base64.b64decode(b64)))
-        assert im.format == "JPEG" and max(im.size) <= 96
+        assert im.format == "WEBP" and max(im.size) <= 96
 
 
 def test_points_match_the_image_contexts_table(built):
@@ -175,6 +175,23 @@ def test_thumbnail_cap_keeps_every_exemplar_and_is_seeded():
     assert not under.sampled and under.ids == ids
 
 
+def test_thumbnail_sample_is_stratified_so_small_groups_are_represented():
+    # 1,000 images: one big stratum of 990 and ten of one image each; cap 50.
+    ids = [f"img{i:04d}" for i in range(1000)]
+    strata = ["big"] * 990 + [f"tiny{k}" for k in range(10)]
+    choice = choose_thumbnail_ids(ids, [], cap=50, seed=1, strata=strata)
+    picked = set(choice.ids)
+    assert all(f"img{990 + k:04d}" in picked for k in range(10))  # every small stratum is represented
+    # One each first, then the remaining 40 to the big stratum: the cap holds exactly.
+    assert len(picked) == 50 and sum(1 for i in ids[:990] if i in picked) == 40
+    # Proportional beyond the minimum: strata of 600 and 300 share 90 - 2 as 59 + 29 (+1 each).
+    two = choose_thumbnail_ids(ids[:900], [], cap=90, seed=2, strata=["a"] * 600 + ["b"] * 300)
+    assert sum(1 for i in two.ids if i < "img0600") == 60 and len(two.ids) == 90
+    # Without strata a plain random sample of 50 would miss most of the ten (expected 0.5 of them).
+    plain = set(choose_thumbnail_ids(ids, [], cap=50, seed=1).ids)
+    assert sum(1 for i in ids[990:] if i in plain) < 10
+
+
 def test_report_over_the_cap_says_it_sampled(tmp_path):
     out = synth.make_output_folder(tmp_path, 60)
     run = json.loads((out / "run.json").read_text())
@@ -218,7 +235,7 @@ def test_not_an_output_folder(tmp_path):
 def test_thumbnail_cache_makes_rebuilds_reuse_thumbnails(tmp_path):
     out = synth.make_output_folder(tmp_path, 20)
     first = _embedded(write_report(out).read_text(encoding="utf-8"), "explore-thumbs")
-    cache = out / "cache" / "thumbnails_96.parquet"
+    cache = out / "cache" / "thumbnails_96_webp.parquet"
     assert cache.is_file() and len(pd.read_parquet(cache)) == 20
     # Remove the photos: a rebuild still has every thumbnail, from the cache.
     for p in pd.read_parquet(out / "images.parquet")["path"]:
@@ -231,7 +248,9 @@ def test_cli_report_command_on_an_output_folder(tmp_path):
     out = synth.make_output_folder(tmp_path, 20)
     done = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(out)], capture_output=True, text=True)
     assert done.returncode == 0, done.stderr
-    assert done.stdout.strip() == f"report: {out / 'report.html'}"
+    lines = done.stdout.strip().splitlines()
+    assert lines[0] == f"report: {out / 'report.html'}"
+    assert lines[1].startswith("findings (only results that pass the study's tests")
     bad = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(tmp_path / "none.toml")],
                          capture_output=True, text=True)
     assert bad.returncode == 2 and "study file not found" in bad.stderr

@@ -149,7 +149,7 @@ def test_hovering_a_point_shows_its_thumbnail(opened, synthetic_report):
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
     opened.page.screenshot(path=str(ARTIFACTS / "synthetic-map-hover.png"))
     src = card.locator("img").get_attribute("src")
-    assert src.startswith("data:image/jpeg;base64,")
+    assert src.startswith("data:image/webp;base64,")
     text = card.inner_text()
     assert images.loc[ic["image_id"].iloc[k], "brand"] in text
     assert "context:" in text
@@ -347,7 +347,7 @@ def test_demo_report_in_the_browser(browser, request):
         p.mouse.move(sx - 30, sy - 30)
         p.mouse.move(sx, sy, steps=5)
         p.locator("#hover-card").wait_for(state="visible", timeout=5000)
-        assert p.locator("#hover-card img").get_attribute("src").startswith("data:image/jpeg;base64,")
+        assert p.locator("#hover-card img").get_attribute("src").startswith("data:image/webp;base64,")
         p.mouse.move(5, 5)
         # The colour selector recolours.
         before = map_js(p, "return Array.from(src.data.color);")
@@ -524,7 +524,7 @@ def test_chart_png_export_and_photo_viewer(opened, synthetic_report):
     assert "context" in facts
     src = p.locator("#lightbox-img").get_attribute("src")
     large = p.evaluate(f"JSON.parse(document.getElementById('explore-large').textContent)['{image_id}']")
-    assert large and src == "data:image/jpeg;base64," + large  # exemplars show their larger copy
+    assert large and src == "data:image/webp;base64," + large  # exemplars show their larger copy
     p.keyboard.press("Escape")
     box.wait_for(state="hidden", timeout=5000)
     assert opened.errors == []

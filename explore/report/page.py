@@ -1,7 +1,7 @@
 """Assemble the report page: section data, bokeh figures, embedded data, HTML.
 
 The page is one file. Bokeh's JavaScript is inlined (``bokeh.resources.INLINE``),
-thumbnails are base64 JPEGs inside one JSON block, and every table offered for
+thumbnails are base64 WebP images inside one JSON block, and every table offered for
 download is embedded as JSON too, so opening the file makes no request of any
 kind.
 
@@ -32,7 +32,7 @@ from explore.report.findings import findings_basis, findings_table, study_fdr
 from explore.report.tables import cell as table_cell
 from explore.report.tables import label as column_label
 from explore.report.tables import readable
-from explore.report.thumbnails import ThumbnailChoice, choose_thumbnail_ids, thumbnails_for
+from explore.report.thumbnails import MIME, ThumbnailChoice, choose_thumbnail_ids, thumbnails_for
 
 #: Per-image tables: too large to embed as they are; the page offers the plotted
 #: images (ids, brand, source, context, map position, attribute probabilities) instead.
@@ -307,10 +307,14 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
     # ---- thumbnails
     exemplar_ids = [i for c in context_list for i in c["exemplars"]]
     usable_ids = usable["image_id"].tolist() if "image_id" in usable else []
-    choice = choose_thumbnail_ids(usable_ids, exemplar_ids, max_thumbnails, seed)
+    strata = None
+    if usable_ids and {"brand", "source"} <= set(usable.columns):
+        ctx_of = points.set_index("image_id")["context_id"].to_dict() if "context_id" in points else {}
+        strata = [(b, s_, ctx_of.get(i, -2)) for i, b, s_ in zip(usable_ids, usable["brand"], usable["source"])]
+    choice = choose_thumbnail_ids(usable_ids, exemplar_ids, max_thumbnails, seed, strata)
     thumbs: dict[str, str] = {}
     if choice.ids and "path" in usable:
-        cache_file = cache_dir / f"thumbnails_{thumbnail_px}.parquet" if cache_dir else None
+        cache_file = cache_dir / f"thumbnails_{thumbnail_px}_webp.parquet" if cache_dir else None
         thumbs = thumbnails_for(usable, choice.ids, thumbnail_px, cache_file)
         unreadable = len(choice.ids) - len(thumbs)
         if unreadable:
@@ -323,7 +327,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
     large: dict[str, str] = {}
     large_ids = [i for i in dict.fromkeys(exemplar_ids) if i in thumbs]
     if large_ids and "path" in usable:
-        large_cache = cache_dir / f"thumbnails_{LARGE_PX}.parquet" if cache_dir else None
+        large_cache = cache_dir / f"thumbnails_{LARGE_PX}_webp.parquet" if cache_dir else None
         large = thumbnails_for(usable, large_ids, LARGE_PX, large_cache)
 
     # ---- per-point payload (columnar: compact and fast to read in the page)
@@ -440,16 +444,8 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
     for name, table in out.tables.items():
         if name not in PER_IMAGE_TABLES:
             payload_tables[name] = table_json(table)
-    photo_table = points.drop(columns=[c for c in ("membership",) if c in points]).copy()
-    if "context_id" in photo_table:
-        photo_table.insert(
-            photo_table.columns.get_loc("context_id") + 1, "context",
-            [context_by_id[c]["name"] if c in context_by_id else "unassigned" for c in photo_table["context_id"]],
-        )
-    if prob_matrix is not None:
-        for j, a in enumerate(attributes):
-            photo_table[f"p_{a}"] = prob_matrix[:, j]
-    payload_tables["photos"] = table_json(photo_table)
+    # The "photos" CSV (one row per plotted image) is built in the page from the point payload and
+    # the map's data source, so the per-image data is embedded once, not twice.
 
     brand_view = _brand_view_data(out, brands, bc, points, thumbs)
     brand_maps = _brand_map_points(out)
@@ -473,6 +469,7 @@ def build_page(out: OutputFolder, *, thumbnail_px: int, max_thumbnails: int, see
         "brandMaps": brand_maps,
         "tables": payload_tables,
         "galleryLimit": GALLERY_LIMIT,
+        "thumbMime": MIME,
     }
 
     overview = _overview(run, out, usable, images_all, choice, thumbs, notes)

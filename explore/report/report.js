@@ -28,7 +28,7 @@
   }
   function thumbSrc(id) {
     var t = THUMBS[id];
-    return t ? "data:image/jpeg;base64," + t : null;
+    return t ? "data:" + DATA.thumbMime + ";base64," + t : null;
   }
   function baseName(path) {
     var s = String(path || "");
@@ -338,7 +338,7 @@
   function openLightbox(id) {
     var k = idIndex[id];
     var large = LARGE[id];
-    var src = large ? "data:image/jpeg;base64," + large : thumbSrc(id);
+    var src = large ? "data:" + DATA.thumbMime + ";base64," + large : thumbSrc(id);
     if (!src) return;
     var img = document.getElementById("lightbox-img");
     img.src = src;
@@ -596,12 +596,31 @@
     table.rows.forEach(function (r) { lines.push(r.map(csvCell).join(",")); });
     return lines.join("\r\n") + "\r\n";
   }
-  window.ExploreReport.toCsv = function (name) { return DATA.tables[name] ? toCsv(DATA.tables[name]) : null; };
+  // The plotted images: built here from the point payload (and the map's positions) when asked for.
+  function photosTable() {
+    var columns = ["image_id", "relpath", "brand", "category", "source", "context_id", "context", "map_x", "map_y"]
+      .concat(DATA.attributes.map(function (a) { return "p_" + a; }));
+    var m = mapModels();
+    var xs = m ? m.source.data.x : null, ys = m ? m.source.data.y : null;
+    var rows = new Array(N);
+    for (var k = 0; k < N; k++) {
+      var r = [P.id[k], P.file[k], DATA.brands[P.b[k]], DATA.categories[P.k[k]], DATA.sources[P.s[k]], P.c[k], contextName(P.c[k]),
+        xs ? Number(xs[k].toPrecision(6)) : null, ys ? Number(ys[k].toPrecision(6)) : null];
+      for (var j = 0; j < DATA.attributes.length; j++) r.push(P.p[j] ? P.p[j][k] : null);
+      rows[k] = r;
+    }
+    return { columns: columns, rows: rows };
+  }
+  function tableNamed(name) {
+    if (name === "photos") return N ? photosTable() : null;
+    return DATA.tables[name] || null;
+  }
+  window.ExploreReport.toCsv = function (name) { var t = tableNamed(name); return t ? toCsv(t) : null; };
   document.querySelectorAll("button.csv").forEach(function (btn) {
     var name = btn.getAttribute("data-table");
-    if (!DATA.tables[name]) { btn.disabled = true; btn.title = "not in this run"; return; }
+    if (!(name === "photos" ? N : DATA.tables[name])) { btn.disabled = true; btn.title = "not in this run"; return; }
     btn.addEventListener("click", function () {
-      var blob = new Blob(["\ufeff" + toCsv(DATA.tables[name])], { type: "text/csv;charset=utf-8" });
+      var blob = new Blob(["\ufeff" + toCsv(tableNamed(name))], { type: "text/csv;charset=utf-8" });
       var a = document.createElement("a");
       a.href = URL.createObjectURL(blob);
       a.download = name + ".csv";
