@@ -15,6 +15,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -273,3 +274,22 @@ def test_thumbnail_follows_exif_orientation_and_keeps_aspect(tmp_path):
     assert make_thumbnail(tmp_path / "missing.jpg", 64) is None
     (tmp_path / "broken.jpg").write_bytes(b"\xff\xd8 not really a jpeg")
     assert make_thumbnail(tmp_path / "broken.jpg", 64) is None
+
+
+def test_heatmap_marks_significant_cells_and_greys_untested_ones():
+    from explore.report import figures
+
+    bc = pd.DataFrame({
+        "brand": ["A", "A", "B"], "context_id": [1, 2, 1], "context": ["beach", "gym", "beach"],
+        "count": [30, 1, 5], "brand_n": [90, 90, 90], "share": [0.33, 0.01, 0.05],
+        "category_share": [0.2, 0.01, 0.2], "index": [165.0, 100.0, 25.0],
+        "q_value": [0.001, np.nan, 0.2],  # significant, untested (too few photos), tested and not significant
+    })
+    fig = figures.context_heatmap(bc, ["A", "B"], [(1, "beach"), (2, "gym")], fdr=0.05)
+    from bokeh.models import ColumnDataSource
+
+    data = next(s for s in fig.select({"type": ColumnDataSource}) if "judged" in s.data).data
+    assert list(data["index_text"]) == ["165*", "–", "25"]
+    assert list(data["judged"]) == ["significant after correction", "too few photos to test", "tested, not significant"]
+    assert list(data["outline_alpha"]) == [1.0, 0.0, 0.0]
+    assert data["color"][1] == "#e6e3dd" and data["color"][0] != data["color"][1]
