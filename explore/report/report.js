@@ -687,10 +687,12 @@
   window.ExploreReport.chartPng = chartPng;
   window.ExploreReport.openLightbox = openLightbox;
   window.ExploreReport.preparePrint = preparePrint;
+  // Chromium fires beforeprint for the print dialog, for --print-to-pdf and for DevTools' printToPDF
+  // (playwright's page.pdf), so the pictures are made only when printing, not on every load.
   window.addEventListener("beforeprint", preparePrint);
   (function whenIdle() {
     if (window.Bokeh && Bokeh.documents && Bokeh.documents.length && Bokeh.documents[0].is_idle) {
-      setTimeout(function () { preparePrint(); document.body.setAttribute("data-print-ready", "1"); }, 0);
+      document.body.setAttribute("data-print-ready", "1");
     } else {
       setTimeout(whenIdle, 100);
     }

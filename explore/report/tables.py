@@ -33,6 +33,8 @@ LABELS = {
     "owned_rank_gap": "mean rank gap, owned", "survey_rank_gap": "mean rank gap, survey",
     "vector_distance": "cosine distance, consumer vs owned", "vector_displacement": "move on the look-alike map",
     "row": "CSV line", "survey_category": "category in survey", "score": "survey score", "sample_size": "survey sample size",
+    "consumer_yes_rate": "consumer yes-rate (%)", "owned_yes_rate": "owned yes-rate (%)",
+    "yes_rate_gap": "yes-rate gap (points)", "yes_rate_index": "yes-rate index (100 = category)",
     "known_brand": "known brand", "known_attribute": "known attribute", "note": "note",
 }
 
@@ -84,7 +86,7 @@ def cell(column: str, value, n=None) -> str:
         return f"{100 * v:+.{pct_digits(n)}f}".replace("-", "\u2212")
     if column in ("p_value", "q_value") or column.endswith(("_p", "_q", "_p_value", "_q_value")):
         return p_text(v)
-    if column in ("index",):
+    if column in ("index", "yes_rate_index", "share_index"):
         return f"{v:.0f}"
     if v == int(v) and abs(v) < 1e15:
         return f"{int(v):,}"
