@@ -83,6 +83,14 @@ def map_js(page, body: str):
     )
 
 
+#: The map's colour column as one text per point: the report writes it as an n x 4 RGBA byte
+#: array, the page's recolouring as CSS colour strings.
+COLOURS_JS = """const c = src.data.color;
+    if (typeof c[0] === 'string') return Array.from(c);
+    const out = []; for (let k = 0; k < c.length / 4; k++) out.push('rgb' + [c[4 * k], c[4 * k + 1], c[4 * k + 2]].join(','));
+    return out;"""
+
+
 def shoot(page, selector: str, name: str) -> None:
     """Screenshot of one section as laid out on the full page (the sticky bar stays at the top)."""
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
@@ -159,11 +167,11 @@ def test_hovering_a_point_shows_its_thumbnail(opened, synthetic_report):
 
 def test_colour_selector_recolours_the_points(opened, synthetic_report):
     out, _ = synthetic_report
-    before = map_js(opened.page, "return Array.from(src.data.color);")
+    before = map_js(opened.page, COLOURS_JS)
     contexts = pd.read_parquet(out / "contexts.parquet")
     assert len(set(before)) == int((contexts["context_id"] >= 0).sum()) + 1  # one colour per context, plus unassigned
     opened.page.select_option("#colour-select", "brand")
-    after = map_js(opened.page, "return Array.from(src.data.color);")
+    after = map_js(opened.page, COLOURS_JS)
     assert after != before
     ic = pd.read_parquet(out / "image_contexts.parquet")
     brands = pd.read_parquet(out / "images.parquet").set_index("image_id").loc[ic["image_id"], "brand"].to_numpy()
@@ -171,7 +179,7 @@ def test_colour_selector_recolours_the_points(opened, synthetic_report):
     pairs = set(zip(brands, after))
     assert len(pairs) == len(set(brands)) == len(set(after))
     opened.page.select_option("#colour-select", "attr:0")
-    ramp = map_js(opened.page, "return Array.from(src.data.color);")
+    ramp = map_js(opened.page, COLOURS_JS)
     assert len(set(ramp)) > 20  # a continuous scale gives many shades
     assert "probability" in opened.page.locator("#map-legend").inner_text()
 
@@ -350,9 +358,9 @@ def test_demo_report_in_the_browser(browser, request):
         assert p.locator("#hover-card img").get_attribute("src").startswith("data:image/webp;base64,")
         p.mouse.move(5, 5)
         # The colour selector recolours.
-        before = map_js(p, "return Array.from(src.data.color);")
+        before = map_js(p, COLOURS_JS)
         p.select_option("#colour-select", "source")
-        assert map_js(p, "return Array.from(src.data.color);") != before
+        assert map_js(p, COLOURS_JS) != before
         # A box over the left half of the frame fills the gallery with what it encloses.
         ax, ay, bx, by = map_js(p, """
             const r = view.canvas_view.el.getBoundingClientRect(); const f = view.frame.bbox;

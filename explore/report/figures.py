@@ -54,6 +54,15 @@ def _style(p) -> None:
 # Context map
 
 
+def rgba_array(colours: list[str]) -> np.ndarray:
+    """'#rrggbb' colours -> n x 4 uint8 RGBA (opaque)."""
+    palette = {c: (int(c[1:3], 16), int(c[3:5], 16), int(c[5:7], 16), 255) for c in set(colours)}
+    out = np.empty((len(colours), 4), dtype=np.uint8)
+    for k, c in enumerate(colours):
+        out[k] = palette[c]
+    return out
+
+
 def context_map(x: np.ndarray, y: np.ndarray, colours: list[str]):
     """WebGL scatter of the 2-D map, one glyph per plotted image.
 
@@ -77,12 +86,14 @@ def context_map(x: np.ndarray, y: np.ndarray, colours: list[str]):
     from bokeh.plotting import figure
 
     n = len(x)
+    # Colours as an n x 4 uint8 RGBA array and no initial filter list: binary columns that bokeh
+    # reads without parsing 100,000 strings (the page script may later set CSS colour strings).
     source = ColumnDataSource(
         data=dict(x=np.asarray(x, dtype=np.float32), y=np.asarray(y, dtype=np.float32),
-                  color=list(colours), i=np.arange(n, dtype=np.int32)),
+                  color=rgba_array(colours), i=np.arange(n, dtype=np.int32)),
         name="map_source",
     )
-    view = CDSView(filter=BooleanFilter(booleans=[True] * n, name="map_filter"))
+    view = CDSView(filter=BooleanFilter(booleans=None, name="map_filter"))
     box = BoxSelectTool()
     lasso = LassoSelectTool()
     wheel = WheelZoomTool()
