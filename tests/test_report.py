@@ -293,3 +293,30 @@ def test_heatmap_marks_significant_cells_and_greys_untested_ones():
     assert list(data["judged"]) == ["significant after correction", "too few photos to test", "tested, not significant"]
     assert list(data["outline_alpha"]) == [1.0, 0.0, 0.0]
     assert data["color"][1] == "#e6e3dd" and data["color"][0] != data["color"][1]
+
+
+def test_pdf_option_says_what_to_do_without_chromium(tmp_path):
+    out = synth.make_output_folder(tmp_path, 20)
+    env = {**__import__("os").environ, "EXPLORE_CHROMIUM": str(tmp_path / "no-such-chromium")}
+    done = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(out), "--pdf"],
+                          capture_output=True, text=True, env=env)
+    assert done.returncode == 2
+    assert "headless Chromium was not found" in done.stderr and "apt-get install -y chromium" in done.stderr
+    assert (out / "report.html").is_file() and not (out / "report.pdf").exists()
+
+
+@pytest.mark.skipif(not Path("/usr/bin/chromium").exists(), reason="Debian's chromium is not installed (/usr/bin/chromium)")
+def test_pdf_option_prints_every_chart_as_one_picture(tmp_path):
+    pdfplumber = pytest.importorskip("pdfplumber")
+    out = synth.make_output_folder(tmp_path, 40)
+    done = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(out), "--pdf", "--paper", "Letter-landscape"],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip().splitlines()[-1] == f"pdf: {out / 'report.pdf'}"
+    n_charts = (out / "report.html").read_text(encoding="utf-8").count('<div class="chart" data-chart=')
+    with pdfplumber.open(out / "report.pdf") as pdf:
+        first = pdf.pages[0]
+        assert round(first.width) == 792 and round(first.height) == 612  # Letter landscape, in points
+        charts = [im for pg in pdf.pages for im in pg.images if im["srcsize"][0] > 300]
+    assert len(charts) == n_charts > 0
+    assert not list(out.glob(".*.print.html"))  # the staged copy is removed
