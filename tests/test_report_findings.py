@@ -107,6 +107,16 @@ def test_attribute_gap_needs_a_corrected_q_value():
     assert f.iloc[0]["value"] == pytest.approx(0.3)
 
 
+def test_attribute_gap_follows_the_study_decision_and_quotes_the_context_adjusted_gap():
+    # q below the FDR but not significant after the context adjustment: not a finding.
+    assert findings_table({"attribute_gaps": _gap_rows(q_value=0.01, significant=False)}).empty
+    rows = _gap_rows(q_value=0.01, context_adjusted_gap=0.21, context_adjusted_low=0.05, context_adjusted_high=0.37,
+                     context_q_value=0.03)
+    f = findings_table({"attribute_gaps": rows})
+    assert "Within the same contexts the gap is +21 points (95 % CI +5 to +37)." in f.iloc[0]["sentence"]
+    assert "context-adjusted (Cochran-Mantel-Haenszel) BH q 0.030" in f.iloc[0]["test"]
+
+
 def test_attribute_gap_uses_the_corrected_share_where_labels_exist():
     rows = _gap_rows(q_value=0.01, consumer_share=0.4, owned_share=0.1, gap=-0.3 + 0.6, gap_low=0.1, gap_high=0.5)
     f = findings_table({"attribute_gaps": rows})

@@ -18,7 +18,9 @@ What counts as a finding (nothing else is promoted):
   ``significant`` true (BH over the tested rows). Number: consumer minus owned
   share with a 95 % Newcombe hybrid score interval (Newcombe, 1998, method 10).
 - attribute gap: a row of ``attribute_gaps`` that passes a multiple-testing
-  correction, i.e. a ``q_value`` column at most ``fdr``. Without q-values (older
+  correction, i.e. a ``q_value`` column at most ``fdr`` and, where the table
+  has it, ``significant`` (the study's decision after BH and the context
+  adjustment); the context-adjusted gap is quoted beside it when present. Without q-values (older
   runs) no attribute gap is promoted, and ``findings_basis`` says so. The
   number is the corrected prevalence gap when the run has hand-label corrected
   shares for that attribute, else the gap in the model's yes-rate, and the
@@ -219,6 +221,10 @@ def _attribute_findings(tables, fdr: float) -> tuple[list[dict], str]:
         q = _f(rec.get(qcol))
         if not (np.isfinite(q) and q <= fdr):
             continue
+        # The study's own decision where it makes one (after BH and, once contexts exist, the
+        # context adjustment: attributes.adjust_gaps_for_context).
+        if "significant" in rec and not bool(rec.get("significant")):
+            continue
         corrected = new_names and np.isfinite(_f(rec.get("gap"))) and np.isfinite(_f(rec.get("gap_low")))
         if corrected:
             cs, os_, gap, lo, hi = (_f(rec.get(c)) for c in ("consumer_share", "owned_share", "gap", "gap_low", "gap_high"))
@@ -244,11 +250,18 @@ def _attribute_findings(tables, fdr: float) -> tuple[list[dict], str]:
             f"its {less} photos: consumer {pct(cs, d)}, owned {pct(os_, d)} "
             f"(95 % CI of the difference {points(lo, d)} to {points(hi, d)} points)."
         )
+        adj, alo, ahi = (_f(rec.get(c)) for c in ("context_adjusted_gap", "context_adjusted_low", "context_adjusted_high"))
+        if np.isfinite(adj):
+            text += (f" Within the same contexts the gap is {points(adj, d)} points "
+                     f"(95 % CI {points(alo, d)} to {points(ahi, d)}).")
+        q_ctx = _f(rec.get("context_q_value"))
         out.append(dict(
             brand=brand, category=str(rec.get("category", "") or ""), kind="attribute gap", sentence=text,
             value=gap, value_low=lo, value_high=hi, unit="percentage points (consumer − owned)",
             estimand=f"consumer minus owned {what}", interval="95 % as in attribute_gaps",
-            test=f"consumer vs owned, BH q {p_text(q)} (at most {fdr:g})", q_value=q, index=float("nan"),
+            test=f"consumer vs owned, BH q {p_text(q)} (at most {fdr:g})"
+                 + (f"; context-adjusted (Cochran-Mantel-Haenszel) BH q {p_text(q_ctx)}" if np.isfinite(q_ctx) else ""),
+            q_value=q, index=float("nan"),
             source="consumer − owned", context_id=float("nan"), context="", attribute=attribute,
             count=float("nan"), n=cn, other_count=float("nan"), other_n=on, from_table="attribute_gaps",
             evidence=f"chart:attribute={attribute}", _strength=abs(gap), _group=0,
