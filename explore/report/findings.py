@@ -266,6 +266,11 @@ def _attribute_findings(tables, fdr: float) -> tuple[list[dict], str]:
             count=float("nan"), n=cn, other_count=float("nan"), other_n=on, from_table="attribute_gaps",
             evidence=f"chart:attribute={attribute}", _strength=abs(gap), _group=0,
         ))
+    if not out:
+        tested = int(gaps[qcol].notna().sum())
+        after = " and the context adjustment" if "context_q_value" in gaps.columns else ""
+        return [], (f"no consumer vs owned gap of the model's yes-rate passed Benjamini-Hochberg{after} "
+                    f"({tested} gaps tested)")
     basis = "attribute gaps after BH correction"
     if used_corrected and used_yes_rate:
         basis += " (corrected shares where hand labels exist, the model's yes-rate elsewhere)"
