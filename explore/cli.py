@@ -361,7 +361,7 @@ def _run(study_path: Path, args) -> int:
     if summary.notes:
         say("method notes (also in the report's Method section):")
     for note in summary.notes:
-        say(f"  {note}")
+        say(note)
     say(f"outputs: {summary.output}")
     if summary.report:
         say(f"report: {summary.report}")
