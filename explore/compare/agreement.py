@@ -9,7 +9,6 @@ family of agreement tests.
 from __future__ import annotations
 
 import functools
-import itertools
 import math
 import warnings
 

@@ -29,7 +29,6 @@ What counts as a finding (nothing else is promoted):
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 import pandas as pd
