@@ -27,6 +27,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
 import report_synthetic  # noqa: E402
 
 from explore.report import write_report  # noqa: E402
+from explore.study import ReportSettings  # noqa: E402
 
 
 def main() -> int:
@@ -42,7 +43,8 @@ def main() -> int:
             folder = base / f"n{n}"
             shutil.rmtree(folder, ignore_errors=True)
             t0 = time.perf_counter()
-            out = report_synthetic.make_output_folder(folder, n, image_px=256, textured=True, seed=n, thumbnail_px=112)
+            out = report_synthetic.make_output_folder(folder, n, image_px=256, textured=True, seed=n, thumbnail_px=112,
+                                                         max_thumbnails=ReportSettings().max_thumbnails)
             made = time.perf_counter() - t0
             t0 = time.perf_counter()
             path = write_report(out)
@@ -51,7 +53,7 @@ def main() -> int:
             path = write_report(out)
             warm = time.perf_counter() - t0
             text = path.read_text(encoding="utf-8")
-            thumbs = text.count('":"/9j/')  # base64 JPEGs start with /9j/
+            thumbs = text.count('":"UklGR')  # base64 WebP (RIFF) images start with UklGR
             size = path.stat().st_size / 1e6
             print(f"{n:>8,} {size:>8.1f} {thumbs:>7,} {cold:>13.1f} {warm:>13.1f} {made:>12.1f}", flush=True)
             if args.browser:

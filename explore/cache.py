@@ -314,11 +314,15 @@ def _npz_bytes(**arrays) -> bytes:
 def _atomic_write(path: Path, data: bytes) -> None:
     """Write ``data`` to ``path`` so that readers see either nothing or all of it."""
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    with open(tmp, "wb") as f:
-        f.write(data)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:  # a full disk or an interruption: no half-written file stays behind
+        tmp.unlink(missing_ok=True)
+        raise
     _fsync_folder(path.parent)
 
 

@@ -7,12 +7,20 @@ the commands that need them, so ``explore --help`` answers at once.
 from __future__ import annotations
 
 import argparse
+import errno
 import sys
 from pathlib import Path
 
 from explore import __version__
 
 DEMO_STUDY = Path(__file__).resolve().parent.parent / "demo_images" / "study.toml"
+
+
+def say(*parts, file=None) -> None:
+    """print, with control and bidi characters in names made visible (``explore.printable``)."""
+    from explore.printable import printable
+
+    print(printable(" ".join(str(p) for p in parts), keep_newlines=True), file=file or sys.stdout)
 
 
 def _add_encoder_options(p: argparse.ArgumentParser) -> None:
@@ -185,6 +193,11 @@ def build_parser() -> argparse.ArgumentParser:
         help="do not blur detected faces in the thumbnails (the default blurs them; "
         "study key report.blur_faces)",
     )
+    p.add_argument("--pdf", action="store_true",
+                   help="also print the report to report.pdf with headless Chromium (/usr/bin/chromium or "
+                   "EXPLORE_CHROMIUM); A4 unless --paper says otherwise")
+    p.add_argument("--paper", choices=["A4", "Letter", "A4-landscape", "Letter-landscape"], default="A4",
+                   help="paper size and orientation of the PDF (default A4 portrait)")
     p.set_defaults(func=cmd_report)
     # --- end report -----------------------------------------------------------------
 
@@ -291,32 +304,46 @@ def cmd_fetch_model(args) -> int:
 
 def cmd_embed(args) -> int:
     from explore import collect, embed
-    from explore.encoders import load_encoder
-    from explore.run import write_tables
-    from explore.study import DEFAULT_CLIP_MODEL, DEFAULT_CLIP_PRETRAINED
     from explore.cache import check_not_busy
+    from explore.encoders import load_encoder
+    from explore.output import OutputLock, Staging, write_tables
+    from explore.study import DEFAULT_CLIP_MODEL, DEFAULT_CLIP_PRETRAINED
 
-    check_not_busy(args.out / "cache")  # refuse at once, not after collecting and loading a model
     source = args.source
-    if source.suffix.lower() == ".csv":
-        images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet)
-    else:
-        images = collect.collect_images(root=source, progress=not args.quiet)
-    print(collect.summarise(images))
-    encoder, notice = load_encoder(
-        args.encoder or "auto",
-        model=args.model or DEFAULT_CLIP_MODEL,
-        pretrained=args.pretrained or DEFAULT_CLIP_PRETRAINED,
-        weights=args.weights,
-    )
-    if notice:
-        print(notice)
-    _, stats = embed.embed_table(
-        images, encoder, cache_dir=args.out / "cache", batch_size=args.batch_size, progress=not args.quiet
-    )
-    print(stats.describe())
-    write_tables(args.out, {"images": images, "skipped": collect.skipped_files(images)})
-    print(f"images table: {args.out / 'images.csv'}")
+    if not source.exists():
+        raise FileNotFoundError(f"{source}: not found (expected an images folder or a manifest .csv)")
+    with OutputLock(args.out, "embed") as lock:
+        for note in lock.notes:
+            say(note)
+        check_not_busy(args.out / "cache")  # refuse at once, not after collecting and loading a model
+        staging = Staging(args.out, lock.run_id)
+        try:
+            folder = staging.create()
+            if source.suffix.lower() == ".csv":
+                images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet)
+            else:
+                images = collect.collect_images(root=source, progress=not args.quiet)
+            say(collect.summarise(images))
+            encoder, notice = load_encoder(
+                args.encoder or "auto",
+                model=args.model or DEFAULT_CLIP_MODEL,
+                pretrained=args.pretrained or DEFAULT_CLIP_PRETRAINED,
+                weights=args.weights,
+            )
+            if notice:
+                say(notice)
+            _, stats = embed.embed_table(
+                images, encoder, cache_dir=args.out / "cache", batch_size=args.batch_size, progress=not args.quiet
+            )
+            say(stats.describe())
+            for note in stats.notes:
+                say(f"embed: {note}")
+            write_tables(folder, {"images": images, "skipped": collect.skipped_files(images)})
+            staging.publish(remove_previous_tables=False)
+        except BaseException:
+            staging.discard()
+            raise
+    say(f"images table: {args.out / 'images.csv'}")
     return 0
 
 
@@ -325,21 +352,35 @@ def _run(study_path: Path, args) -> int:
     from explore.study import load_study
 
     study = _with_extra_attributes(load_study(study_path), args.attribute)
-    summary = run_study(study, encoder_name=args.encoder, weights=args.weights,
-                        labels_path=getattr(args, "labels", None), progress=not args.quiet)
-    print(f"study: {summary.study}")
-    print(f"encoder: {summary.encoder_id}")
-    print(
+    summary = run_study(
+        study, encoder_name=args.encoder, weights=args.weights, labels_path=getattr(args, "labels", None),
+        progress=not args.quiet, log=say,
+    )
+    say(f"study: {summary.study}")
+    say(f"run: {summary.run_id}")
+    say(f"encoder: {summary.encoder_id}")
+    say(
         f"images: {summary.images_found} found, {summary.images_used} used, "
         f"{summary.images_skipped} skipped, {summary.images_embedded} embedded this run"
     )
-    print("time per stage: " + ", ".join(f"{k} {v:.1f}s" for k, v in summary.stage_seconds.items()))
+    say("time per stage: " + ", ".join(f"{k} {v:.1f}s" for k, v in summary.stage_seconds.items()))
+    if summary.notes:
+        say("method notes (also in the report's Method section):")
     for note in summary.notes:
-        print(note)
-    print(f"outputs: {summary.output}")
+        say(note)
+    say(f"outputs: {summary.output}")
     if summary.report:
-        print(f"report: {summary.report}")
+        say(f"report: {summary.report}")
+        _print_closing_summary(summary.output)
     return 0
+
+
+def _print_closing_summary(folder) -> None:
+    """The report's findings and advice: the same sentences the report opens with."""
+    from explore.report import closing_summary
+
+    for line in closing_summary(folder):
+        say(line)
 
 
 def cmd_run(args) -> int:
@@ -363,11 +404,12 @@ def cmd_check(args) -> int:
         save_threshold=args.save_threshold,
         save_probe=args.save_probe,
         progress=not args.quiet,
+        log=say,
     )
-    print(f"encoder: {results[0].encoder_id}")
+    say(f"encoder: {results[0].encoder_id}")
     for result in results:
-        print(result.describe())
-    print(f"tables: {study.output / 'attribute_check.csv'} (and _reliability, _descriptions)")
+        say(result.describe())
+    say(f"tables: {study.output / 'attribute_check.csv'} (and _reliability, _descriptions)")
     return 0
 
 
@@ -377,9 +419,9 @@ def cmd_init(args) -> int:
 
     path = write_starter_study(args.folder, args.out, force=args.force)
     brands = {b: s for b, s in find_brands(args.folder).items() if s}
-    print(f"study: {path}")
-    print(f"brands: {len(brands)} ({', '.join(brands)})")
-    print(f"next: explore run {path}")
+    say(f"study: {path}")
+    say(f"brands: {len(brands)} ({', '.join(brands)})")
+    say(f"next: explore run {path}")
     return 0
 # --- end init -----------------------------------------------------------------------
 
@@ -415,28 +457,70 @@ def cmd_label(args) -> int:
 
 # --- report (explore/report/) -------------------------------------------------------
 def cmd_report(args) -> int:
-    from explore.report import ReportError, write_report
-    from explore.study import load_study
+    from explore.output import OutputLock, check_one_run
+    from explore.report import REPORT_NAME, ReportError, write_report
+    from explore.study import check_report_settings, load_study
 
-    try:
-        blur = False if getattr(args, "show_faces", False) else None
-        if args.study.is_dir():
-            path = write_report(args.study, blur_faces=blur)
-        else:
-            study = load_study(args.study)
-            path = write_report(study.output, study, blur_faces=blur)
-    except ReportError as exc:
-        print(f"explore: error: {exc}", file=sys.stderr)
+    study = None
+    if args.study.is_dir():
+        folder = args.study
+    else:
+        study = load_study(args.study)
+        check_report_settings(study.report, str(args.study))
+        folder = study.output
+    if not Path(folder).is_dir():
+        say(f"explore: error: {folder}: output folder not found; run the study first (explore run STUDY)",
+              file=sys.stderr)
         return 2
-    print(f"report: {path}")
+    try:
+        with OutputLock(folder, "report") as lock:
+            for note in lock.notes:
+                say(note)
+            check_one_run(folder)  # never a report from tables of different runs
+            try:
+                blur = False if getattr(args, "show_faces", False) else None
+                path = write_report(folder, study, blur_faces=blur)
+            except BaseException:
+                (Path(folder) / f"{REPORT_NAME}.tmp").unlink(missing_ok=True)
+                raise
+    except ReportError as exc:
+        say(f"explore: error: {exc}", file=sys.stderr)
+        return 2
+    say(f"report: {path}")
+    _print_closing_summary(path.parent)
+    if args.pdf:
+        from explore.report import write_pdf
+
+        try:
+            pdf = write_pdf(path, paper=args.paper)
+        except ReportError as exc:
+            say(f"explore: error: {exc}", file=sys.stderr)
+            return 2
+        say(f"pdf: {pdf}")
     return 0
 # --- end report -----------------------------------------------------------------------
+
+
+def os_error_line(exc: OSError) -> str:
+    """``PATH: reason`` for an OSError (our own FileNotFoundError messages already name the path)."""
+    if exc.filename is None:
+        return " ".join(str(exc).split())
+    where = str(exc.filename)
+    if exc.filename2 is not None:
+        where += f" -> {exc.filename2}"
+    reason = exc.strerror or str(exc)
+    if exc.errno == errno.ENOSPC:
+        reason += "; free some space (the previous results are unchanged)"
+    elif exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+        reason += "; choose a folder you can write to"
+    return f"{where}: {reason}"
 
 
 def main(argv: list[str] | None = None) -> int:
     from explore.cache import CacheError  # includes CacheBusy (another run holds the cache)
     from explore.embed import EmbedError
     from explore.encoders.base import EncoderUnavailable
+    from explore.output import OutputError  # includes OutputBusy (another command holds the folder)
     from explore.study import StudyError
 
     parser = build_parser()
@@ -446,11 +530,14 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     try:
         return args.func(args)
-    except (StudyError, EncoderUnavailable, FileNotFoundError, CacheError, EmbedError) as exc:
-        print(f"explore: error: {exc}", file=sys.stderr)
+    except (StudyError, EncoderUnavailable, CacheError, EmbedError, OutputError) as exc:
+        say(f"explore: error: {exc}", file=sys.stderr)
+        return 2
+    except OSError as exc:  # the environment: permissions, read-only or full disk, a file in the way
+        say(f"explore: error: {os_error_line(exc)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("explore: interrupted; what was cached so far is kept", file=sys.stderr)
+        say("explore: interrupted; what was cached so far is kept", file=sys.stderr)
         return 130
 
 

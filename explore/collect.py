@@ -379,10 +379,12 @@ def _image_id(key: str) -> str:
     return hashlib.sha1(key.encode("utf-8")).hexdigest()[:12]
 
 
-def _tree_entries(root: Path, categories: dict[str, str]) -> list[_Entry]:
+def _tree_entries(root: Path, categories: dict[str, str], exclude: tuple[Path, ...] = ()) -> list[_Entry]:
     entries = []
+    skip = {p.resolve() for p in exclude}
     for folder, dirs, files in os.walk(root):
-        dirs.sort()
+        # An output folder inside the images root holds our own files, not photos.
+        dirs[:] = sorted(d for d in dirs if (Path(folder) / d).resolve() not in skip)
         for name in sorted(files):
             if name.lower() in _CLUTTER or name.startswith("._"):
                 continue
@@ -643,6 +645,7 @@ def collect_images(
     max_per_poster: int = 0,
     seed: int = 0,
     reposts: str = "exclude",
+    exclude: tuple[Path, ...] = (),
 ) -> pd.DataFrame:
     """Find the images and build the images table (one row per file found).
 
@@ -667,6 +670,7 @@ def collect_images(
     reposts : ``exclude`` (a brand's owned photo re-posted in its consumer set
         gets status ``repost``) or ``keep`` (stays ``ok``); ``repost_of`` is
         filled either way.
+    exclude : folders under the root that are not searched (a study's output folder).
 
     Returns
     -------
@@ -692,7 +696,7 @@ def collect_images(
             raise FileNotFoundError(f"{root}: images folder not found")
         if not root.is_dir():
             raise CollectError(f"{root}: expected a folder ROOT/<brand>/<source>/... of images")
-        entries = _tree_entries(root.absolute(), categories)
+        entries = _tree_entries(root.absolute(), categories, tuple(Path(p) for p in exclude))
         if metadata is not None:
             _apply_sidecar(Path(metadata), root.absolute(), entries)
     else:
@@ -953,6 +957,7 @@ def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
         max_per_poster=study.images.max_per_poster,
         seed=study.seed,
         reposts=getattr(study.images, "reposts", "exclude"),
+        exclude=(study.output,),
     )
 
 

@@ -37,6 +37,7 @@ from __future__ import annotations
 
 import time
 import warnings
+import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -339,6 +340,64 @@ def find_contexts(vectors: np.ndarray, settings: ContextSettings, seed: int = 0)
     return fit
 
 
+STABILITY_COLUMNS = [
+    "main_seed", "refit_seed", "images", "main_contexts", "refit_contexts", "both_assigned", "ari",
+    "ari_with_unassigned", "main_unassigned_share", "refit_unassigned_share", "method",
+]
+#: Largest number of images refitted for the stability check (a seeded sample above it).
+STABILITY_MAX_IMAGES = 5000
+#: Above this share of unassigned photos the notes and the brand view give advice.
+UNASSIGNED_ADVICE_SHARE = 0.30
+#: Below this adjusted Rand index the run notes advise reading the contexts with care.
+STABILITY_ADVICE_ARI = 0.8
+
+
+def context_stability(vectors: np.ndarray, labels: np.ndarray, settings: ContextSettings, seed: int = 0,
+                      *, max_images: int = STABILITY_MAX_IMAGES) -> pd.DataFrame:
+    """Refit the contexts on another seed and compare with the main fit (adjusted Rand index).
+
+    The refit uses seed + 1 on the same images (a seeded sample of
+    ``max_images`` above that). Agreement is the adjusted Rand index
+    (Hubert and Arabie 1985; ``sklearn.metrics.adjusted_rand_score``) of
+    the two labelings on the images assigned to a context in both fits (1 =
+    the same partition up to renumbering, about 0 = chance), and, stricter,
+    on all images with "unassigned" as one more group.
+
+    Returns
+    -------
+    One-row DataFrame: ``main_seed``, ``refit_seed``, ``images``,
+    ``main_contexts``, ``refit_contexts``, ``both_assigned``, ``ari``,
+    ``ari_with_unassigned``, ``main_unassigned_share``,
+    ``refit_unassigned_share``, ``method``.
+    """
+    from sklearn.metrics import adjusted_rand_score
+
+    vectors = np.asarray(vectors, dtype=np.float32)
+    labels = np.asarray(labels)
+    n = len(vectors)
+    if n > max_images:
+        idx = np.sort(np.random.default_rng([seed, 17]).choice(n, max_images, replace=False))
+        method = f"refit with seed {seed + 1} on a seeded sample of {max_images:,} of {n:,} images"
+    else:
+        idx = np.arange(n)
+        method = f"refit with seed {seed + 1} on all {n:,} images"
+    refit = find_contexts(vectors[idx], settings, seed + 1)
+    main, other = labels[idx], refit.labels
+    both = (main != UNASSIGNED_ID) & (other != UNASSIGNED_ID)
+    ari = float(adjusted_rand_score(main[both], other[both])) if both.sum() >= 2 else float("nan")
+    return pd.DataFrame([{
+        "main_seed": seed, "refit_seed": seed + 1, "images": len(idx),
+        "main_contexts": int(main.max()) if (main > 0).any() else 0,
+        "refit_contexts": refit.n_contexts,
+        "both_assigned": int(both.sum()),
+        "ari": ari,
+        "ari_with_unassigned": float(adjusted_rand_score(main, other)),
+        "main_unassigned_share": float(np.mean(main == UNASSIGNED_ID)),
+        "refit_unassigned_share": float(np.mean(other == UNASSIGNED_ID)),
+        "method": method,
+    }])
+
+
 # --------------------------------------------------------------------------
 # Naming contexts
 
@@ -512,12 +571,112 @@ def benjamini_hochberg(p_values) -> np.ndarray:
     return q
 
 
+#: Poster permutations per test (p = (1 + hits) / (1 + permutations)).
+POSTER_PERMUTATIONS = 1999
+FISHER_TEST = "Fisher exact (photos assumed independent)"
+
+
+def poster_units(frame: pd.DataFrame, by: list[str]) -> pd.Series | None:
+    """Resampling unit per photo: its poster within ``by`` (brand, source ...), or None without posters.
+
+    Returns None when the table has no ``poster`` column or every poster is
+    empty (photos are then assumed independent). A photo with an empty
+    poster is its own unit.
+    """
+    poster = frame.get("poster")
+    if poster is None:
+        return None
+    text = poster.fillna("").astype(str).str.strip()
+    if not (text != "").any():
+        return None
+    own = pd.Series([f"photo:{k}" for k in range(len(frame))], index=frame.index)
+    key = frame[by].astype(str).agg("\x1f".join, axis=1)
+    return key + "\x1f" + text.where(text != "", own)
+
+
+def cluster_permutation_pvalues(
+    focal: np.ndarray, counts: np.ndarray, permutations: int = POSTER_PERMUTATIONS, seed=0,
+) -> np.ndarray:
+    """Two-sided permutation p-values of a share difference with whole units (posters) permuted.
+
+    The units (rows of ``counts``, one per poster; columns = contexts) are
+    split into the focal group (``focal`` True: the brand's posters, or its
+    consumer posters) and the rest. Under the null that the group label is
+    exchangeable between posters, every split with the same number of focal
+    posters is equally likely (a cluster-level permutation test, as for
+    cluster-randomised designs: Gail et al. 1996, Statistics in Medicine
+    15:1069). The statistic per context is |focal share - rest share| of
+    photos; p = share of splits at least as extreme. When the number of
+    possible splits is at most ``permutations`` every split is enumerated
+    (exact); otherwise p = (1 + hits) / (1 + permutations) over seeded random
+    splits.
+
+    Returns
+    -------
+    (n_contexts,) p-values (1 where either group has no photo).
+    """
+    import itertools
+    import math
+
+    focal = np.asarray(focal, dtype=bool)
+    counts = np.asarray(counts, dtype=np.float64)
+    n_unit = counts.sum(axis=1)
+    u, m = len(focal), int(focal.sum())
+    total, total_n = counts.sum(axis=0), n_unit.sum()
+
+    def stat(member: np.ndarray) -> np.ndarray:  # member: (B, U) 0/1
+        fc, fn = member @ counts, member @ n_unit
+        rn = total_n - fn
+        with np.errstate(invalid="ignore", divide="ignore"):
+            d = fc / fn[:, None] - (total - fc) / rn[:, None]
+        return np.abs(np.where((fn[:, None] > 0) & (rn[:, None] > 0), d, 0.0))
+
+    if m == 0 or m == u:
+        return np.ones(counts.shape[1])
+    observed = stat(focal[None, :].astype(np.float64))[0]
+    tol = 1e-12
+    splits = math.comb(u, m)
+    if splits <= permutations:
+        member = np.zeros((splits, u))
+        for k, chosen in enumerate(itertools.combinations(range(u), m)):
+            member[k, list(chosen)] = 1.0
+        hits = (stat(member) >= observed - tol).sum(axis=0)
+        return hits / splits
+    rng = np.random.default_rng(seed)
+    hits = np.zeros(counts.shape[1])
+    step = max(1, min(500, 4_000_000 // u))  # splits per block: about 32 MB of membership rows at most
+    for start in range(0, permutations, step):
+        b = min(step, permutations - start)
+        order = np.argsort(rng.random((b, u)), axis=1)[:, :m]
+        member = np.zeros((b, u))
+        np.put_along_axis(member, order, 1.0, axis=1)
+        hits += (stat(member) >= observed - tol).sum(axis=0)
+    return (1 + hits) / (1 + permutations)
+
+
+def _poster_test(sub: pd.DataFrame, units: pd.Series, focal_mask: pd.Series, context_ids: list, seed) -> np.ndarray:
+    """Poster-permutation p per context for the photos ``sub`` (focal group vs the rest)."""
+    codes, uniq = pd.factorize(units.loc[sub.index])
+    counts = np.zeros((len(uniq), len(context_ids)))
+    col = {c: k for k, c in enumerate(context_ids)}
+    np.add.at(counts, (codes, sub["context_id"].map(col).to_numpy()), 1.0)
+    focal = np.zeros(len(uniq), dtype=bool)
+    focal[codes[focal_mask.loc[sub.index].to_numpy()]] = True
+    return cluster_permutation_pvalues(focal, counts, seed=seed)
+
+
+def poster_test_name(permutations: int = POSTER_PERMUTATIONS) -> str:
+    return (f"poster permutation ({permutations:,} random splits of posters, or every split when fewer; "
+            "photos of one poster move together)")
+
+
 # --------------------------------------------------------------------------
 # Brand x context
 
 
 def brand_context_table(
-    images: pd.DataFrame, labels: np.ndarray, names: dict[int, str] | None = None, min_margin: int = 0
+    images: pd.DataFrame, labels: np.ndarray, names: dict[int, str] | None = None, min_margin: int = 0,
+    seed: int = 0,
 ) -> pd.DataFrame:
     """Count, share, index and Fisher test per brand, source and context.
 
@@ -541,6 +700,11 @@ def brand_context_table(
       (Bourgon, Gentleman and Huber, 2010, PNAS 107:9546): Fisher's test
       conditions on its margins, so the filter does not bias the p-values
       that remain, and the family is not padded with empty cells.
+    - test: how p_value was computed. Fisher's test treats photos as
+      independent; when ``images`` has a non-empty ``poster`` column the
+      p-value comes from :func:`cluster_permutation_pvalues` instead (the
+      brand's posters against the rest of its category's, photos of one
+      poster kept together), seeded by ``seed``.
 
     Parameters
     ----------
@@ -552,6 +716,7 @@ def brand_context_table(
     _require(images, ["brand", "category", "source"], "images")
     frame = images[["brand", "category", "source"]].reset_index(drop=True).copy()
     frame["context_id"] = np.asarray(labels, dtype=np.int64)
+    units = poster_units(images.reset_index(drop=True), ["brand"])
     context_ids = sorted(frame["context_id"].unique())
     parts = []
     for source in SOURCES:
@@ -575,18 +740,29 @@ def brand_context_table(
     table["rest_share"] = table["rest_count"] / table["rest_n"].where(table["rest_n"] > 0)
     tested = (table["rest_n"] > 0) & (table["context_id"] != UNASSIGNED_ID)
     table["p_value"] = np.nan
-    if tested.any():
+    table["test"] = ""
+    if tested.any() and units is None:
         t = table[tested]
         table.loc[tested, "p_value"] = fisher_pvalues(
             t["count"], t["brand_n"] - t["count"], t["rest_count"], t["rest_n"] - t["rest_count"]
         )
+        table.loc[tested, "test"] = FISHER_TEST
+    elif tested.any():
+        for (source, category, brand), idx in table[tested].groupby(["source", "category", "brand"]).groups.items():
+            sub = frame[frame["category"] == category]
+            if source != "all":
+                sub = sub[sub["source"] == source]
+            p = dict(zip(context_ids, _poster_test(sub, units, frame["brand"] == brand, context_ids,
+                                                   [seed, zlib.crc32(f"{source}|{brand}".encode())])))
+            table.loc[idx, "p_value"] = table.loc[idx, "context_id"].map(p).to_numpy()
+            table.loc[idx, "test"] = poster_test_name()
     family = (table["category_count"] >= min_margin).to_numpy()
     table["q_value"] = np.nan
     table.loc[family, "q_value"] = benjamini_hochberg(table.loc[family, "p_value"].to_numpy())
     table["context"] = table["context_id"].map(lambda c: _name(c, names))
     columns = [
         "brand", "category", "source", "context_id", "context", "count", "brand_n", "share",
-        "category_share", "index", "rest_count", "rest_n", "rest_share", "p_value", "q_value",
+        "category_share", "index", "rest_count", "rest_n", "rest_share", "p_value", "q_value", "test",
     ]
     table = table[columns].sort_values(["category", "brand", "source", "context_id"], kind="stable")
     return table.reset_index(drop=True)
@@ -652,7 +828,8 @@ def unexpected_contexts(table: pd.DataFrame, settings: ContextSettings) -> pd.Da
 
 
 def source_context_gaps(
-    images: pd.DataFrame, labels: np.ndarray, settings: ContextSettings, names: dict[int, str] | None = None
+    images: pd.DataFrame, labels: np.ndarray, settings: ContextSettings, names: dict[int, str] | None = None,
+    seed: int = 0,
 ) -> pd.DataFrame:
     """Per brand and context: consumer share vs owned share, Fisher test, BH.
 
@@ -664,16 +841,20 @@ def source_context_gaps(
     rest (independent filtering, as in ``brand_context_table``; "unassigned"
     rows are reported, not tested). significant: q_value <= fdr and the larger
     of the two counts >= min_count. direction says which
-    source shows the context more.
+    source shows the context more. test: ``Fisher exact (photos assumed
+    independent)``, or, when ``images`` has a non-empty ``poster`` column, a
+    permutation of the brand's posters between its consumer and owned photos
+    (:func:`cluster_permutation_pvalues`), seeded by ``seed``.
     """
     _require(images, ["brand", "category", "source"], "images")
     frame = images[["brand", "category", "source"]].reset_index(drop=True).copy()
     frame["context_id"] = np.asarray(labels, dtype=np.int64)
+    units = poster_units(images.reset_index(drop=True), ["brand", "source"])
     frame = frame[frame["source"].isin(["consumer", "owned"])]
     context_ids = sorted(np.unique(np.asarray(labels)))
     columns = [
         "brand", "category", "context_id", "context", "consumer_count", "consumer_n", "consumer_share",
-        "owned_count", "owned_n", "owned_share", "gap", "p_value", "q_value", "significant", "direction",
+        "owned_count", "owned_n", "owned_share", "gap", "p_value", "q_value", "significant", "direction", "test",
     ]
     if frame.empty:
         return pd.DataFrame(columns=columns)
@@ -696,12 +877,21 @@ def source_context_gaps(
     out["gap"] = out["consumer_share"] - out["owned_share"]
     tested = out["context_id"] != UNASSIGNED_ID
     out["p_value"] = np.nan
-    if tested.any():
+    out["test"] = ""
+    if tested.any() and units is None:
         t = out[tested]
         out.loc[tested, "p_value"] = fisher_pvalues(
             t["consumer_count"], t["consumer_n"] - t["consumer_count"],
             t["owned_count"], t["owned_n"] - t["owned_count"],
         )
+        out.loc[tested, "test"] = FISHER_TEST
+    elif tested.any():
+        for brand, idx in out[tested].groupby("brand").groups.items():
+            sub = frame[frame["brand"] == brand]
+            p = dict(zip(context_ids, _poster_test(sub, units, frame["source"] == "consumer", context_ids,
+                                                   [seed, zlib.crc32(f"gap|{brand}".encode())])))
+            out.loc[idx, "p_value"] = out.loc[idx, "context_id"].map(p).to_numpy()
+            out.loc[idx, "test"] = poster_test_name()
     family = ((out["consumer_count"] + out["owned_count"]) >= settings.min_count).to_numpy()
     out["q_value"] = np.nan
     out.loc[family, "q_value"] = benjamini_hochberg(out.loc[family, "p_value"].to_numpy())
@@ -730,6 +920,7 @@ def run_contexts(
     encode_texts=None,
     encoder_id: str = "",
     seconds: dict | None = None,
+    stability: bool = True,
 ) -> dict[str, pd.DataFrame]:
     """The whole contexts stage: find, name, index, and list the findings.
 
@@ -744,11 +935,14 @@ def run_contexts(
         (the encoder's ``encode_texts``); without it contexts are numbered.
     encoder_id : recorded in the contexts table.
     seconds : optional dict that receives the wall time of each step.
+    stability : refit on another seed and report the agreement
+        (:func:`context_stability`; table ``context_stability``).
 
     Returns
     -------
     dict of tables: image_contexts, contexts, brand_contexts,
-    signature_contexts, unexpected_contexts, source_context_gaps.
+    signature_contexts, unexpected_contexts, source_context_gaps, and
+    context_stability (empty when ``stability`` is False).
     """
     _require(images, ["image_id", "brand", "category", "source"], "images")
     cluster = np.asarray(cluster)
@@ -760,7 +954,8 @@ def run_contexts(
     missing = [i for i in image_ids if i not in by_id.index]
     if missing:
         raise ValueError(f"contexts: image ids not in the images table, e.g. {missing[:3]}")
-    rows = by_id.loc[list(image_ids), ["brand", "category", "source"]].reset_index()
+    keep = ["brand", "category", "source"] + (["poster"] if "poster" in by_id.columns else [])
+    rows = by_id.loc[list(image_ids), keep].reset_index()
 
     fit = find_contexts(cluster, settings, seed)
     labels = fit.labels
@@ -801,19 +996,25 @@ def run_contexts(
     ]
 
     after_naming = time.perf_counter()
-    table = brand_context_table(rows, labels, names, min_margin=settings.min_count)
+    table = brand_context_table(rows, labels, names, min_margin=settings.min_count, seed=seed)
     result = {
         "image_contexts": image_contexts,
         "contexts": contexts,
         "brand_contexts": table,
         "signature_contexts": signature_contexts(table, settings),
         "unexpected_contexts": unexpected_contexts(table, settings),
-        "source_context_gaps": source_context_gaps(rows, labels, settings, names),
+        "source_context_gaps": source_context_gaps(rows, labels, settings, names, seed=seed),
     }
+    before_stability = time.perf_counter()
+    result["context_stability"] = (
+        context_stability(cluster, labels, settings, seed) if stability and len(labels) >= 3
+        else pd.DataFrame(columns=STABILITY_COLUMNS)
+    )
     if seconds is not None:
+        seconds["stability_refit"] = round(time.perf_counter() - before_stability, 2)
         seconds.update(fit.seconds)
         seconds["names_exemplars"] = round(after_naming - start, 2)
-        seconds["brand_tables"] = round(time.perf_counter() - after_naming, 2)
+        seconds["brand_tables"] = round(before_stability - after_naming, 2)
     return result
 
 
@@ -886,7 +1087,37 @@ def describe(tables: dict[str, pd.DataFrame]) -> list[str]:
         f"({len(tables['signature_contexts'])} and {len(tables['unexpected_contexts'])} counting the "
         f"consumer-only and owned-only rows), "
         f"{int(gaps['significant'].sum()) if len(gaps) else 0} consumer-vs-owned differences",
-    ]
+    ] + _stability_notes(tables.get("context_stability"), unassigned / max(total, 1)) + _test_notes(tables)
+
+
+def _stability_notes(stability: pd.DataFrame | None, unassigned_share: float) -> list[str]:
+    notes = []
+    if stability is not None and len(stability):
+        r = stability.iloc[0]
+        line = (f"contexts: stability: {r['method']} found {int(r['refit_contexts'])} contexts "
+                f"(main fit {int(r['main_contexts'])}); adjusted Rand index {r['ari']:.2f} on the "
+                f"{int(r['both_assigned'])} images assigned in both ({r['ari_with_unassigned']:.2f} counting "
+                "unassigned as a group)")
+        if not r["ari"] >= STABILITY_ADVICE_ARI:
+            line += (f"; below {STABILITY_ADVICE_ARI}: contexts change with the seed, so read small contexts "
+                     "and their names with care")
+        notes.append(line)
+    if unassigned_share > UNASSIGNED_ADVICE_SHARE:
+        notes.append(
+            f"contexts: {unassigned_share:.0%} of the photos fit no context (above {UNASSIGNED_ADVICE_SHARE:.0%}): "
+            "context shares describe only part of each brand's photos; more photos per brand, or a smaller "
+            "min_cluster_size, usually assign more"
+        )
+    return notes
+
+
+def _test_notes(tables: dict[str, pd.DataFrame]) -> list[str]:
+    bc = tables.get("brand_contexts")
+    if bc is None or "test" not in bc or not (bc["test"] != "").any():
+        return []
+    method = bc.loc[bc["test"] != "", "test"].iloc[0]
+    return [f"contexts: brand x context tests: {method}; Benjamini-Hochberg over the rows with a category "
+            "count of at least min_count"]
 
 
 def _all(table: pd.DataFrame) -> int:

@@ -37,6 +37,14 @@ class EmbedError(RuntimeError):
     """Embedding cannot go on (a file changed since it was collected, or the encoder misbehaves)."""
 
 
+class ImageFault(EmbedError):
+    """One image cannot be embedded now (it changed or vanished since collect); the run skips it."""
+
+    def __init__(self, sha256: str, path: str, status: str, reason: str):
+        super().__init__(f"{path}: {reason} (during this run; run again to re-collect)")
+        self.sha256, self.path, self.status, self.reason = sha256, path, status, reason
+
+
 @dataclass
 class Embeddings:
     """Vectors aligned with the usable rows (``status == "ok"``) of the images table.
@@ -63,6 +71,9 @@ class EmbedStats:
     duplicates: int = 0  # usable rows sharing content with another row (embedded once)
     seconds: float = 0.0  # time spent embedding new images
     notes: list[str] = field(default_factory=list)
+    #: sha256 -> (status, reason) of images that could not be embedded now (changed
+    #: or gone since collect); their rows are left out of the Embeddings.
+    skipped: dict = field(default_factory=dict)
 
     @property
     def rate(self) -> float:
@@ -135,11 +146,24 @@ def embed_table(
                 path_of.setdefault(sha, path)
             start = time.perf_counter()
             try:
-                _embed_into(cache, [(s, path_of[s]) for s in todo], encoder, batch_size, progress, streams)
+                _embed_into(
+                    cache, [(s, path_of[s]) for s in todo], encoder, batch_size, progress, streams, stats.skipped
+                )
+            except BaseException:
+                try:
+                    cache.compact()  # merge what was written; never hide the first error (e.g. a full disk)
+                except OSError:
+                    pass
+                raise
+            else:
+                cache.compact()
             finally:
                 stats.embedded = len(todo) - len(cache.missing(todo))
                 stats.seconds = time.perf_counter() - start
-                cache.compact()
+        if stats.skipped:  # an image changed during the run: leave its rows out, the run goes on
+            keep = [i for i, sha in enumerate(shas) if sha not in stats.skipped]
+            image_ids = [image_ids[i] for i in keep]
+            shas = [shas[i] for i in keep]
         cluster, joint = cache.get(shas)
     return Embeddings(image_ids=image_ids, encoder_id=encoder.id, cluster=cluster, joint=joint), stats
 
@@ -186,13 +210,13 @@ def embed_batch(encoder, items, draft_size: int | None = None) -> tuple[np.ndarr
         try:
             tensors.append(encoder.preprocess(open_rgb(path, draft_size=draft_size, expect_sha256=sha)))
         except ImageProblem as problem:
-            raise EmbedError(f"{path}: {problem.reason} (during this run; run again to re-collect)") from None
+            raise ImageFault(sha, str(path), problem.status, problem.reason) from None
     with torch.inference_mode():
         out = encoder.encode_images(torch.stack(tensors))
     return _check(out, "cluster", len(items), encoder.id), _check(out, "joint", len(items), encoder.id)
 
 
-def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, streams) -> None:
+def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, streams, skipped=None) -> None:
     """Run ``embed_batch`` in parallel streams; write each finished batch to the cache.
 
     A stream decodes its batch, then encodes it with ``cpus // streams`` torch
@@ -237,6 +261,18 @@ def _embed_into(cache: EmbeddingCache, todo, encoder, batch_size, progress, stre
                     batch = pending.pop(future)
                     try:
                         cluster, joint = future.result()
+                    except ImageFault as fault:  # one image changed: skip it, embed the rest of its batch
+                        if skipped is None:
+                            error = error or fault
+                            continue
+                        skipped[fault.sha256] = (fault.status, fault.reason)
+                        bar.update(1)
+                        rest = [item for item in batch if item[0] != fault.sha256]
+                        if rest:
+                            pending[pool.submit(embed_batch, encoder, rest)] = rest
+                        elif error is None:
+                            submit_next()
+                        continue
                     except Exception as exc:  # keep what the other streams finish, then raise
                         error = error or exc
                         continue

@@ -1,13 +1,17 @@
 """Run a study end to end: every stage in data-flow order, tables written to disk.
 
 This is the one place that knows the order of the stages. Each stage returns
-named tables; this module writes them (CSV and Parquet) into the study's
-output folder and records what was done in ``run.json``.
+named tables; this module writes them (CSV and Parquet) and records what was
+done in ``run.json``. A run first checks every setting, file and folder it
+needs (``preflight``), then takes the output folder's lock, writes everything
+into a staging folder and publishes it in one step at the end
+(``explore.output``), so the output folder always holds one complete run.
 """
 
 from __future__ import annotations
 
 import json
+import os
 import time
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
@@ -16,7 +20,10 @@ from typing import Callable
 
 import pandas as pd
 
-from explore.study import Study
+from explore.output import OutputLock, Staging, pause_point, write_tables
+from explore.study import Study, StudyError
+
+__all__ = ["RunSummary", "run_study", "check_study", "preflight", "write_tables", "read_saved_checks"]
 
 
 @dataclass
@@ -25,6 +32,7 @@ class RunSummary:
 
     study: str
     output: Path
+    run_id: str = ""
     encoder_id: str = ""
     encoder_notice: str = ""
     images_found: int = 0
@@ -35,17 +43,6 @@ class RunSummary:
     tables: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     report: Path | None = None
-
-
-def write_tables(folder: Path, tables: dict[str, pd.DataFrame]) -> list[str]:
-    """Write each table as NAME.csv and NAME.parquet; returns the names written."""
-    folder.mkdir(parents=True, exist_ok=True)
-    written = []
-    for name, table in tables.items():
-        table.to_csv(folder / f"{name}.csv", index=False)
-        table.to_parquet(folder / f"{name}.parquet", index=False)
-        written.append(name)
-    return written
 
 
 def _jsonable(value):
@@ -80,7 +77,13 @@ def run_study(
     progress: bool = True,
     log: Callable[[str], None] = print,
 ) -> RunSummary:
-    """Run every stage of ``study`` and write its outputs.
+    """Run every stage of ``study`` and publish its outputs in one step.
+
+    Checks the study first (``preflight``), takes the output folder's lock
+    (``output.OutputBusy`` when another command holds it), writes every table,
+    ``run.json`` and the report into a staging folder and makes them current
+    only when all stages succeeded. A failure leaves the previous results as
+    they were.
 
     Parameters
     ----------
@@ -97,23 +100,105 @@ def run_study(
     -------
     RunSummary
     """
-    from explore import collect, embed
-
-    out = study.output
-    out.mkdir(parents=True, exist_ok=True)
-    summary = RunSummary(study=study.name, output=out)
-    timer = _StageTimer(summary)
-
-    # compare: read the survey first, so a bad survey file fails before the slow stages.
-    from explore import compare
-
-    survey = compare.read_survey(study.survey.file) if study.survey.file else None
+    survey = preflight(study, weights=weights)
     labels_path = labels_path or study.labels.file
     label_table = read_labels_file(labels_path) if labels_path else None  # a bad file fails early too
+    final = Path(study.output)
+    with OutputLock(final, "run") as lock:
+        summary = RunSummary(study=study.name, output=final, run_id=lock.run_id)
+        for note in lock.notes:
+            log(note)
+        summary.notes += lock.notes
+        staging = Staging(final, lock.run_id)
+        try:
+            out = staging.create()
+            probe_writable(final / "cache")
+            _run_stages(
+                study, out, summary, survey, encoder_name, weights, progress, log, labels_path, label_table
+            )
+            staging.publish()
+        except BaseException:
+            staging.discard()
+            raise
+    if summary.report is not None:
+        summary.report = final / summary.report.name
+    return summary
 
+
+def skip_changed(images: pd.DataFrame, skipped: dict) -> pd.DataFrame:
+    """The images table with the rows of ``skipped`` (sha256 -> (status, reason)) marked as skipped."""
+    images = images.copy()
+    for sha, (status, reason) in skipped.items():
+        rows = (images["sha256"] == sha) & (images["status"] == "ok")
+        images.loc[rows, "status"] = status
+        images.loc[rows, "reason"] = f"{reason} (during the run)"
+    return images
+
+
+def probe_writable(folder: Path) -> None:
+    """Write, fsync and remove a real file in ``folder``: the OSError names the folder's problem."""
+    folder.mkdir(parents=True, exist_ok=True)
+    probe = folder / f".write-probe-{os.getpid()}"
+    try:
+        with open(probe, "wb") as f:
+            f.write(b"explore write probe\n")
+            f.flush()
+            os.fsync(f.fileno())
+    finally:
+        probe.unlink(missing_ok=True)
+
+
+def preflight(study: Study, weights: Path | None = None):
+    """Check every setting and input file a run needs, before anything is read or written.
+
+    Fast (no images read, no model loaded), so a mistake fails at once with the
+    file, the key and what was expected. Returns the survey table (or None).
+
+    Raises
+    ------
+    StudyError (or ``compare.SurveyError``) naming the file and key.
+    """
+    from explore.study import check_report_settings
+
+    where = str(study.path) if study.path else "<study>"
+    check_report_settings(study.report, where)
+    images = study.images
+    if images.manifest is not None:
+        if not Path(images.manifest).is_file():
+            raise StudyError(f"{where}: key 'images.manifest': {images.manifest} is not a file")
+    elif images.root is not None and not Path(images.root).is_dir():
+        raise StudyError(f"{where}: key 'images.root': {images.root} is not a folder")
+    if images.root is not None and images.manifest is not None and not Path(images.root).is_dir():
+        raise StudyError(f"{where}: key 'images.root': {images.root} is not a folder")
+    weights = weights or study.encoder.weights
+    if weights is not None and not Path(weights).is_file():
+        raise StudyError(f"{where}: key 'encoder.weights' (or --weights): {weights} is not a file")
+    from explore import contexts
+
+    try:
+        contexts.load_vocabulary(study.contexts)
+    except (ValueError, OSError) as exc:
+        key = "contexts.vocabulary" if study.contexts.vocabulary is not None else "contexts.extra_phrases"
+        raise StudyError(f"{where}: key '{key}': {str(exc).removeprefix('contexts: ')}") from None
+    output = Path(study.output)
+    if output.exists() and not output.is_dir():
+        raise StudyError(f"{where}: key 'output': {output} is a file; expected a folder (or a path to create)")
+    read_saved_checks(output)
+    from explore import compare
+
+    return compare.read_survey(study.survey.file) if study.survey.file else None
+
+
+def _run_stages(
+    study: Study, out: Path, summary: RunSummary, survey, encoder_name, weights, progress, log,
+    labels_path=None, label_table=None,
+) -> None:
+    """The stages in data-flow order, writing into ``out`` (the staging folder)."""
+    from explore import collect, compare, embed
     from explore.cache import check_not_busy
 
-    check_not_busy(out / "cache")  # refuse a concurrent run at once, before the slow steps
+    timer = _StageTimer(summary)
+    check_not_busy(out / "cache")  # refuse a concurrent embed at once, before the slow steps
 
     with timer("collect"):
         images = collect.collect_study_images(study, progress=progress)
@@ -149,6 +234,19 @@ def run_study(
         )
         summary.images_embedded = stats.embedded
         log(stats.describe())
+        if stats.skipped:  # images that changed since collect: listed as skipped, the run goes on
+            images = skip_changed(images, stats.skipped)
+            write_tables(out, {"images": images, "skipped": collect.skipped_files(images)})
+            summary.images_used = int((images["status"] == "ok").sum())
+            summary.images_skipped = summary.images_found - summary.images_used
+            for sha, (status, reason) in stats.skipped.items():
+                where = ", ".join(images.loc[images["sha256"] == sha, "relpath"].astype(str))
+                note = f"embed: {where}: skipped, {reason} ({status})"
+                log(note)
+                summary.notes.append(note)
+        for note in stats.notes:  # cache repairs (a damaged shard set aside and re-embedded)
+            log(f"embed: {note}")
+            summary.notes.append(f"embed: {note}")
 
     with timer("near-duplicates"):
         from explore import duplicates
@@ -192,7 +290,7 @@ def run_study(
             study.scoring,
             encoder,
             seed=study.seed,
-            saved_checks=read_saved_checks(out),
+            saved_checks=read_saved_checks(study.output),
             labels=labels,
         )
         summary.tables += write_tables(out, attribute_tables)
@@ -243,12 +341,16 @@ def run_study(
                 brand_categories=dict(zip(images["brand"], images["category"])),
                 images=images,
                 embeddings=embeddings,
+                image_attributes=attribute_tables.get("image_attributes"),
+                seed=study.seed,
             )
             summary.tables += write_tables(out, compare_tables)
             summary.notes += [f"compare: {note}" for note in compare_notes]
     # --- end compare ----------------------------------------------------------
 
     record = {
+        "run_id": summary.run_id,
+        "output": str(study.output),
         "study": study.name,
         "study_file": str(study.path) if study.path else "",
         "written_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
@@ -274,7 +376,6 @@ def run_study(
 
         summary.report = write_report(out, study)
     # --- end report --------------------------------------------------------------
-    return summary
 
 
 class _StageTimer:
@@ -290,8 +391,10 @@ class _StageTimer:
             def __enter__(self):
                 self.start = time.perf_counter()
 
-            def __exit__(self, *exc):
+            def __exit__(self, kind, value, tb):
                 summary.stage_seconds[name] = round(time.perf_counter() - self.start, 2)
+                if kind is None:
+                    pause_point(name)  # a test hook at every stage boundary (explore.output)
                 return False
 
         return _Timer()
@@ -407,14 +510,36 @@ def check_study(
     -------
     list of ``attributes.AttributeCheck``, one per labelled attribute.
     """
-    from explore import attributes, collect, embed
-    from explore.study import StudyError
-
     labels_path = Path(labels_path)
     table = read_labels_file(labels_path)
 
-    out = study.output
-    out.mkdir(parents=True, exist_ok=True)
+    preflight(study, weights=weights)
+    final = Path(study.output)
+    with OutputLock(final, "check") as lock:
+        for note in lock.notes:
+            log(note)
+        staging = Staging(final, lock.run_id)
+        try:
+            out = staging.create()
+            probe_writable(final / "cache")
+            results = _check_in(
+                study, out, final, table, labels_path, encoder_name, weights, save_threshold, save_probe,
+                progress, log,
+            )
+            staging.publish(remove_previous_tables=False)
+        except BaseException:
+            staging.discard()
+            raise
+    return results
+
+
+def _check_in(
+    study, out, final, table, labels_path, encoder_name, weights, save_threshold, save_probe, progress, log
+) -> list:
+    """The body of ``check_study``, writing into ``out`` (a staging folder) and reading ``final``."""
+    from explore import attributes, collect, embed
+    from explore.study import StudyError
+
     images = collect.collect_study_images(study, progress=progress)
     labels, warnings = attributes.read_labels(
         table, images, [a.name for a in study.attributes], where=str(labels_path), base=labels_path.parent
@@ -436,7 +561,7 @@ def check_study(
     log(stats.describe())
 
     results, _ = check_labels(study, labels, embeddings, encoder, log=log)
-    saved_all = read_saved_checks(out)
+    saved_all = read_saved_checks(final)
     to_save = {}
     for result in results:
         record, said = attributes.saved_record(result, save_threshold=save_threshold, save_probe=save_probe)
@@ -451,10 +576,7 @@ def check_study(
     write_tables(out, attributes.checks_table(results))
     if to_save:
         saved_all.update(to_save)
-        path = out / SAVED_CHECKS_FILE
-        tmp = path.with_suffix(".json.tmp")
-        tmp.write_text(json.dumps(saved_all, indent=2), encoding="utf-8")
-        tmp.replace(path)
+        (out / SAVED_CHECKS_FILE).write_text(json.dumps(saved_all, indent=2), encoding="utf-8")
     return results
 
 

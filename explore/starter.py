@@ -14,6 +14,7 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
+from explore.printable import UNSAFE, printable
 from explore.study import StudyError
 
 #: Aaker's (1997) five brand-personality dimensions as prompt pairs of our own
@@ -59,8 +60,14 @@ def find_brands(folder: Path) -> dict[str, list[str]]:
 
 
 def _toml_string(text: str) -> str:
-    """A TOML basic string (quotes and backslashes escaped)."""
+    """A TOML basic string: quotes, backslashes and every unsafe character escaped.
+
+    TOML refuses raw control characters, and bidi controls would reorder what
+    the user reads, so both are written as ``\\uXXXX`` escapes: the value read
+    back is the exact folder name.
+    """
     escaped = text.replace("\\", "\\\\").replace('"', '\\"')
+    escaped = UNSAFE.sub(lambda m: f"\\u{ord(m.group(0)):04X}", escaped)
     return f'"{escaped}"'
 
 
@@ -104,9 +111,9 @@ def starter_study_text(folder: str | Path, study_path: str | Path | None = None)
     output = Path(os.path.relpath(folder.parent / f"{folder.name}-results", base)).as_posix()
 
     lines = [
-        f"# Starter study written by `explore init` for {folder.name}/.",
+        f"# Starter study written by `explore init` for {printable(folder.name)}/.",
         "# Edit freely; every key is described in the README. Run it with:",
-        f"#   explore run {Path(os.path.relpath(study_path, Path.cwd())).as_posix()}",
+        f"#   explore run {printable(Path(os.path.relpath(study_path, Path.cwd())).as_posix())}",
         "",
         f"name = {_toml_string(folder.name)}",
         f"output = {_toml_string(output)}",
@@ -125,7 +132,7 @@ def starter_study_text(folder: str | Path, study_path: str | Path | None = None)
     if skipped:
         lines.append(
             "# Folders without a 'consumer' or 'owned' folder inside (their files are listed as skipped): "
-            + ", ".join(skipped)
+            + ", ".join(printable(b) for b in skipped)
         )
     lines += [
         "",

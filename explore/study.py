@@ -156,7 +156,7 @@ class ReportSettings:
     """The self-contained HTML report."""
 
     thumbnail_px: int = 112
-    max_thumbnails: int = 20000
+    max_thumbnails: int = 5000  # keeps a 100k-image report under 30 MB (benchmarks/report_size.py)
     #: Blur detected faces in the report's pictures (``explore/report/faces.py``);
     #: the vectors always come from the original photos.
     blur_faces: bool = True
@@ -299,6 +299,7 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
     survey = _section(raw, "survey", SurveySettings, where, base)
     labels = _section(raw, "labels", LabelsSettings, where, base)
     report = _section(raw, "report", ReportSettings, where, base)
+    check_report_settings(report, where)
 
     return Study(
         name=name,
@@ -339,6 +340,16 @@ def check_context_settings(settings: ContextSettings, where: str) -> None:
         raise StudyError(
             f"{where}: keys 'contexts.min_index' (>= 0) and 'contexts.dominance_ratio' (>= 1) are out of range"
         )
+
+
+def check_report_settings(settings: ReportSettings, where: str) -> None:
+    """Refuse report settings outside their range (checked on load, not after the slow stages)."""
+    if not 16 <= settings.thumbnail_px <= 512:
+        raise StudyError(
+            f"{where}: key 'report.thumbnail_px' is {settings.thumbnail_px}; expected a size between 16 and 512 pixels"
+        )
+    if settings.max_thumbnails < 0:
+        raise StudyError(f"{where}: key 'report.max_thumbnails' is {settings.max_thumbnails}; expected 0 or more")
 
 
 def check_template(template: str, where: str) -> None:

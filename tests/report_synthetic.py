@@ -50,6 +50,7 @@ def make_output_folder(
     with_attributes: bool = True,
     textured: bool = False,
     thumbnail_px: int = 96,
+    max_thumbnails: int | None = None,
 ) -> Path:
     """Write a synthetic output folder (and its images under ``folder/images``)."""
     from PIL import Image, ImageDraw
@@ -320,7 +321,7 @@ def make_output_folder(
         "stage_seconds": {"collect": 0.1, "embed": 1.0},
         "settings": {"name": "Synthetic test study", "seed": seed, "brands": brands,
                      "images": {"root": str(root), "manifest": None},
-                     "report": {"thumbnail_px": thumbnail_px, "max_thumbnails": 20000}},
+                     "report": {"thumbnail_px": thumbnail_px, "max_thumbnails": 20000 if max_thumbnails is None else max_thumbnails}},
         "tables": list(tables),
         "notes": [],
     }

@@ -78,7 +78,7 @@ def test_concordant_share_is_half_one_plus_tau_without_ties(n):
 
 
 @pytest.mark.parametrize("seed, with_ties", [(1, False), (2, True), (3, True), (4, False)])
-def test_statistics_equal_scipy(seed, with_ties):
+def test_coefficients_match_textbook_formulas(seed, with_ties):
     rng = np.random.default_rng(seed)
     n = 9
     x = rng.normal(size=n)
@@ -90,20 +90,176 @@ def test_statistics_equal_scipy(seed, with_ties):
     got = compare.pair_agreement(x, y)
     keep = ~np.isnan(x)
     xs, ys = x[keep], y[keep]
-    # references: scipy.stats.kendalltau (tau-b), spearmanr, pearsonr
-    tau = stats.kendalltau(xs, ys)
-    rho = stats.spearmanr(xs, ys)
-    r = stats.pearsonr(xs, ys)
-    assert got["n_brands"] == n - 1
-    assert got["kendall_tau"] == pytest.approx(tau.statistic, abs=1e-12)
-    assert got["kendall_p"] == pytest.approx(tau.pvalue, abs=1e-12)
-    assert got["spearman_rho"] == pytest.approx(rho.statistic, abs=1e-12)
-    assert got["spearman_p"] == pytest.approx(rho.pvalue, abs=1e-12)
-    assert got["pearson_r"] == pytest.approx(r.statistic, abs=1e-12)
-    assert got["pearson_p"] == pytest.approx(r.pvalue, abs=1e-12)
-    assert got["concordant"] + got["discordant"] + got["ties"] == got["pairs"] == (n - 1) * (n - 2) // 2
+    m = len(xs)
+    # independent computations: Pearson's r as numpy.corrcoef; Spearman's rho
+    # as Pearson's r of average ranks (Spearman 1904; with no ties the same as
+    # 1 - 6 sum d^2 / (n (n^2 - 1))); Kendall's tau-b by brute force over pairs
+    # (Kendall 1945: (C - D) / sqrt((P - Tx)(P - Ty))).
+    rx, ry = stats.rankdata(xs), stats.rankdata(ys)
+    assert got["n_brands"] == m
+    assert got["pearson_r"] == pytest.approx(np.corrcoef(xs, ys)[0, 1], abs=1e-12)
+    assert got["spearman_rho"] == pytest.approx(np.corrcoef(rx, ry)[0, 1], abs=1e-12)
+    if not with_ties:
+        d2 = float(np.sum((rx - ry) ** 2))
+        assert got["spearman_rho"] == pytest.approx(1 - 6 * d2 / (m * (m * m - 1)), abs=1e-12)
+    c = d = tx = ty = 0
+    for i in range(m):
+        for j in range(i + 1, m):
+            sx, sy = np.sign(xs[i] - xs[j]), np.sign(ys[i] - ys[j])
+            c += sx * sy > 0
+            d += sx * sy < 0
+            tx += sx == 0
+            ty += sy == 0
+    pairs = m * (m - 1) // 2
+    assert got["kendall_tau"] == pytest.approx((c - d) / np.sqrt((pairs - tx) * (pairs - ty)), abs=1e-12)
+    assert got["concordant"] + got["discordant"] + got["ties"] == got["pairs"] == pairs
+    assert got["p_method"].startswith("exact permutation")
     if with_ties:
         assert got["ties"] > 0 and "tied" in got["note"]
+
+
+def test_exact_p_three_brands_can_never_go_below_one_third():
+    # Full enumeration by hand: 3 brands have 3! = 6 orderings; a perfect
+    # agreement ties with its reverse (|rho| = |tau| = |r| = 1), so the smallest
+    # two-sided exact p is 2/6 = 1/3 whatever the data (the issue's example:
+    # the report printed "Spearman rho 1 (p 0)").
+    got = compare.exact_permutation_pvalues([0.1, 0.2, 0.3], [3.0, 4.0, 5.0])
+    assert got == pytest.approx({"kendall": 1 / 3, "spearman": 1 / 3, "pearson": 1 / 3}, abs=1e-15)
+    # the table gives no p-value below 5 brands (counts only)
+    row = compare.pair_agreement([0.1, 0.2, 0.3], [3.0, 4.0, 5.0])
+    assert np.isnan(row["spearman_p"]) and np.isnan(row["spearman_rho"]) and row["concordant"] == 3
+    assert row["note"].startswith("counts only")
+
+
+def test_exact_spearman_p_five_brands_worked_by_hand():
+    # n = 5, one adjacent swap: sum d^2 = 2, rho = 1 - 6 * 2 / 120 = 0.9. By hand:
+    # rho >= 0.9 for the identity and the 4 adjacent swaps, rho <= -0.9 for
+    # their reverses, so the two-sided exact p = 10 / 120 (consistent with
+    # Zar 1972, JASA 67:578, table of critical values: n = 5, two-sided
+    # alpha 0.10 -> 0.900; from memory).
+    got = compare.pair_agreement([1, 2, 3, 4, 5], [2, 1, 3, 4, 5])
+    assert got["spearman_rho"] == pytest.approx(0.9)
+    assert got["spearman_p"] == pytest.approx(10 / 120, abs=1e-15)
+
+
+@pytest.mark.parametrize("n, ties", [(5, False), (6, True), (6, False)])
+def test_exact_p_matches_scipy_permutation_test(n, ties):
+    # Reference: scipy.stats.permutation_test(permutation_type="pairings",
+    # n_resamples=inf) enumerates every ordering of x against y; with the
+    # statistic |stat| and alternative "greater" it is the two-sided p that
+    # counts orderings at least as far from 0 (our definition).
+    rng = np.random.default_rng(n)
+    x = rng.normal(size=n)
+    y = 0.5 * x + rng.normal(size=n)
+    if ties:
+        x, y = np.round(x), np.round(2 * y) / 2
+    got = compare.exact_permutation_pvalues(x, y)
+
+    def ref(fn):
+        res = stats.permutation_test((x,), lambda xp: abs(fn(xp, y)), permutation_type="pairings",
+                                     n_resamples=np.inf, alternative="greater")
+        return res.pvalue
+
+    assert got["pearson"] == pytest.approx(ref(lambda a, b: np.corrcoef(a, b)[0, 1]), abs=1e-12)
+    assert got["spearman"] == pytest.approx(ref(lambda a, b: stats.spearmanr(a, b).statistic), abs=1e-12)
+    assert got["kendall"] == pytest.approx(ref(lambda a, b: stats.kendalltau(a, b).statistic), abs=1e-12)
+    if not ties:
+        # and Kendall's (1938) exact null distribution as scipy computes it
+        assert got["kendall"] == pytest.approx(stats.kendalltau(x, y, method="exact").pvalue, abs=1e-12)
+
+
+def test_large_sample_p_above_ten_brands_matches_textbook_formulas():
+    rng = np.random.default_rng(12)
+    n = 14
+    x = rng.normal(size=n)
+    y = 0.4 * x + rng.normal(size=n)
+    got = compare.pair_agreement(x, y)
+    assert got["p_method"] == "large-sample (scipy)"
+    # Pearson: t = r sqrt((n - 2) / (1 - r^2)) on n - 2 df (Student; Fisher 1915)
+    r = got["pearson_r"]
+    t = r * np.sqrt((n - 2) / (1 - r * r))
+    assert got["pearson_p"] == pytest.approx(2 * stats.t.sf(abs(t), n - 2), rel=1e-9)
+    # Kendall, no ties, 40 brands (scipy's "auto" is exact up to 33): z = 3 S /
+    # sqrt(n (n - 1) (2n + 5) / 2) (Kendall 1938), normal tail
+    n = 40
+    x = rng.normal(size=n)
+    got = compare.pair_agreement(x, 0.3 * x + rng.normal(size=n))
+    s = got["concordant"] - got["discordant"]
+    z = 3 * s / np.sqrt(n * (n - 1) * (2 * n + 5) / 2)
+    assert got["kendall_p"] == pytest.approx(2 * stats.norm.sf(abs(z)), rel=1e-9)
+
+
+def test_pearson_interval_matches_scipy_fisher_z():
+    # Reference: scipy.stats.pearsonr(...).confidence_interval() (Fisher z, 95 %).
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=9)
+    y = 0.5 * x + rng.normal(size=9)
+    got = compare.pair_agreement(x, y)
+    ci = stats.pearsonr(x, y).confidence_interval(0.95)
+    assert (got["pearson_low"], got["pearson_high"]) == pytest.approx((ci.low, ci.high), abs=1e-12)
+
+
+def test_rank_correlation_intervals_cover_the_truth_at_the_stated_rate():
+    # Simulation with known truth: bivariate normal with correlation 0.5, whose
+    # population Kendall tau = (2 / pi) asin(0.5) and Spearman rho =
+    # (6 / pi) asin(0.25) (Greiner 1909; Pearson 1907). The Fieller, Hartley
+    # and Pearson (1957) intervals are known to cover close to 95 % for
+    # moderate n (Bonett and Wright 2000); 400 replications of 10 brands.
+    rng = np.random.default_rng(2026)
+    tau_true, rho_true = 2 / np.pi * np.arcsin(0.5), 6 / np.pi * np.arcsin(0.25)
+    n, reps = 10, 400
+    cover = {"kendall": 0, "spearman": 0}
+    for _ in range(reps):
+        x = rng.normal(size=n)
+        y = 0.5 * x + np.sqrt(0.75) * rng.normal(size=n)
+        tau, rho = stats.kendalltau(x, y).statistic, stats.spearmanr(x, y).statistic
+        lo, hi = compare.fisher_z_interval(tau, np.sqrt(0.437 / (n - 4)))
+        cover["kendall"] += lo <= tau_true <= hi
+        lo, hi = compare.fisher_z_interval(rho, np.sqrt(1.06 / (n - 3)))
+        cover["spearman"] += lo <= rho_true <= hi
+    print({k: v / reps for k, v in cover.items()})
+    # about +-2.3 binomial standard errors around 0.95 at 400 replications
+    assert all(0.925 <= v / reps <= 0.975 for v in cover.values())
+    # and the table uses those same standard errors
+    x = rng.normal(size=n)
+    y = x + rng.normal(size=n)
+    got = compare.pair_agreement(x, y)
+    assert (got["kendall_low"], got["kendall_high"]) == pytest.approx(
+        compare.fisher_z_interval(got["kendall_tau"], np.sqrt(0.437 / (n - 4))))
+
+
+def test_agreement_family_is_corrected_by_benjamini_hochberg():
+    # Reference: statsmodels.stats.multitest.multipletests(method="fdr_bh") over
+    # the rows with a p-value (the family); "significant" only after correction.
+    from statsmodels.stats.multitest import multipletests
+
+    rng = np.random.default_rng(4)
+    brands = [f"B{k}" for k in range(7)]
+    x = np.arange(7.0)
+    rows = []
+    for k, attribute in enumerate([f"a{k}" for k in range(12)]):
+        if k < 2:
+            owned = x  # perfect agreement: exact p = 2 / 7!
+        elif k == 2:
+            owned = np.array([1, 0, 3, 2, 5, 4, 6.0])  # three swaps: Kendall exact p = 0.030 (p < 0.05, q > 0.05)
+        else:
+            owned = rng.permutation(7).astype(float)  # noise
+        for b, c, o in zip(brands, x, owned):
+            rows.append({"category": "c", "brand": b, "attribute": attribute,
+                         "consumer_share": c, "owned_share": o, "survey_score": np.nan})
+    metrics = pd.DataFrame(rows)
+    table = compare.agreement_table(metrics)
+    tested = table["kendall_p"].notna()
+    assert tested.all() and len(table) == 12
+    for name in ("kendall", "spearman", "pearson"):
+        ref = multipletests(table[f"{name}_p"], method="fdr_bh")[1]
+        np.testing.assert_allclose(table[f"{name}_q"], ref, rtol=1e-12)
+    assert (table["significant"] == (table["kendall_q"] <= 0.05)).all()
+    assert table["family"].str.contains("m = 12").all()
+    # a row significant before correction but not after exists, and is not flagged
+    raw_only = (table["kendall_p"] <= 0.05) & (table["kendall_q"] > 0.05)
+    assert raw_only.any() and (~table.loc[raw_only, "significant"]).all()
+    assert table.loc[table["attribute"].isin(["a0", "a1"]), "significant"].all()
 
 
 def test_pair_counts_by_hand():
@@ -117,7 +273,7 @@ def test_too_few_brands_gives_counts_and_a_note():
     got = compare.pair_agreement([0.2, 0.5], [3.0, 4.0])
     assert got["n_brands"] == 2 and got["pairs"] == 1 and got["concordant"] == 1
     assert np.isnan(got["kendall_tau"]) and np.isnan(got["pearson_p"])
-    assert got["note"].startswith("too few brands")
+    assert got["note"].startswith("counts only")
 
     # through the table: a category with two brands
     consumer = {b: p for b, p in random_profiles(5).items() if b in ("Alba", "Brio", "Dune", "Echo", "Fjel")}
@@ -125,14 +281,17 @@ def test_too_few_brands_gives_counts_and_a_note():
     rows = tables["agreement"]
     drinks = rows[rows["category"] == "drinks"]
     assert (drinks["n_brands"] == 2).all() and drinks["kendall_tau"].isna().all()
-    assert drinks["note"].str.startswith("too few brands").all()
+    assert drinks["note"].str.startswith("counts only").all()
+    # 3 brands: counts only as well (no p-value below 5 brands); 5 pooled: tested
     gear = rows[rows["category"] == "gear"]
-    assert gear["kendall_tau"].notna().all()
-    assert any("too few brands" in n and "drinks" in n for n in notes)
+    assert (gear["n_brands"] == 3).all() and gear["kendall_p"].isna().all() and gear["concordant"].notna().all()
+    pooled = rows[rows["category"] == compare.ALL_CATEGORIES]
+    assert (pooled["n_brands"] == 5).all() and pooled["kendall_p"].notna().all()
+    assert any("counts only" in n and "drinks" in n and "gear" in n for n in notes)
 
 
 def test_constant_metric_is_explained_not_computed():
-    got = compare.pair_agreement([0.0, 0.0, 0.0, 0.0], [1.0, 2.0, 3.0, 4.0])
+    got = compare.pair_agreement([0.0, 0.0, 0.0, 0.0, 0.0], [1.0, 2.0, 3.0, 4.0, 5.0])
     assert np.isnan(got["spearman_rho"]) and "same for every brand" in got["note"]
 
 
@@ -149,7 +308,12 @@ def test_agreement_table_covers_categories_attributes_and_metric_pairs(tmp_path)
     # survey built as 7 x consumer share: a perfect linear and rank agreement
     cs = agreement[(agreement["metric_a"] == "consumer_share") & (agreement["metric_b"] == "survey_score")]
     assert (cs["concordant_share"] == 1.0).all()
-    assert np.allclose(cs["pearson_r"], 1.0, atol=1e-6)
+    # 3 brands per category: counts only; the 6 pooled brands get correlations and an exact p
+    pooled = cs["category"] == compare.ALL_CATEGORIES
+    assert cs.loc[~pooled, "pearson_r"].isna().all()
+    assert np.allclose(cs.loc[pooled, "pearson_r"], 1.0, atol=1e-6)
+    # perfect agreement of 6 brands: exact p = 2 / 6! (itself and its reverse), by enumeration
+    assert np.allclose(cs.loc[pooled, "spearman_p"], 2 / 720, rtol=1e-12)
 
 
 def test_rank_gaps_by_hand():
@@ -348,7 +512,134 @@ def test_planted_owned_shift_moves_that_brand_most():
     print(disp.to_string())
     assert disp.iloc[0]["brand"] == "Cora"
     assert disp.set_index("brand")["owned_rank_gap"].idxmax() == "Cora"
-    assert any("moves most: Cora" in n for n in notes)
+    # no image-level table: no bootstrap, so the summary says "largest", not "moves most"
+    assert any("largest displacement (no bootstrap): Cora" in n for n in notes)
+    assert not any("moves most" in n for n in notes)
+
+
+def image_level(consumer: dict, owned: dict, n: int, seed: int, posters: int | None = None):
+    """Images and image_attributes tables drawn from true shares: n photos per brand x source.
+
+    With ``posters``, each cell's photos come from that many posters and all
+    photos of a poster share one 0/1 value per attribute (perfect clustering).
+    """
+    rng = np.random.default_rng(seed)
+    images, attrs = [], []
+    for source, truth in (("consumer", consumer), ("owned", owned)):
+        for brand, per in truth.items():
+            poster_values = None
+            if posters:
+                poster_values = {a: rng.random(posters) < v for a, v in per.items()}
+            for k in range(n):
+                image_id = f"{brand}-{source}-{k}"
+                poster = f"{brand}-{source}-p{k % posters}" if posters else ""
+                images.append({"image_id": image_id, "brand": brand, "category": BRANDS[brand],
+                               "source": source, "poster": poster})
+                for a, v in per.items():
+                    positive = bool(poster_values[a][k % posters]) if posters else bool(rng.random() < v)
+                    attrs.append({"image_id": image_id, "attribute": a, "positive": positive,
+                                  "probability": float(positive)})
+    images, attrs = pd.DataFrame(images), pd.DataFrame(attrs)
+    shares = attrs.merge(images, on="image_id").groupby(["brand", "source", "attribute"])["positive"].mean()
+    observed = {s: {b: {a: float(shares[(b, s, a)]) for a in ATTRIBUTES} for b in BRANDS} for s in ("consumer", "owned")}
+    return images, attrs, make_shares(observed["consumer"], observed["owned"])
+
+
+def test_protest_exact_matches_an_independent_enumeration_with_scipy():
+    # Independent check: scipy.spatial.procrustes (its own standardisation and
+    # SVD) inside a loop over all 5! orderings written here; p = share of
+    # orderings with a disparity at most the observed one (Jackson 1995).
+    import itertools
+
+    rng = np.random.default_rng(9)
+    a = rng.normal(size=(5, 2))
+    b = a @ np.array([[0, -1], [1, 0]]) * 2 + rng.normal(scale=0.6, size=(5, 2))
+    got = compare.protest(a, b)
+    observed = scipy_procrustes(a, b)[2]
+    perms = [scipy_procrustes(a, b[list(order)])[2] for order in itertools.permutations(range(5))]
+    assert got["disparity"] == pytest.approx(observed, abs=1e-12)
+    assert got["p_value"] == pytest.approx(np.mean(np.array(perms) <= observed + 1e-10), abs=1e-15)
+    assert got["permutations"] == 120 and got["method"].startswith("exact")
+    # vegan's protest prints m12 squared and the "correlation in a symmetric
+    # Procrustes rotation" sqrt(1 - m12^2) (from memory of its output): the same pair here
+    assert got["correlation"] == pytest.approx(np.sqrt(1 - observed), abs=1e-12)
+    # an identical map (up to rotation and scale) is the best of all 5! orderings: p = 1/120
+    same = compare.protest(a, 3 * a @ np.array([[0, 1], [1, 0]]))
+    assert same["p_value"] == pytest.approx(1 / 120, abs=1e-15) and same["disparity"] < 1e-12
+
+
+def test_protest_random_orderings_follow_the_vegan_convention_and_hold_their_level():
+    # Above 8 brands: seeded random orderings, p = (1 + hits) / (1 + permutations)
+    # (vegan's protest convention, from memory), so a perfect fit gets exactly 1 / 10,000.
+    rng = np.random.default_rng(3)
+    a = rng.normal(size=(12, 2))
+    assert compare.protest(a, -a)["p_value"] == pytest.approx(1 / 10_000, abs=1e-15)
+    # under the null (unrelated maps) p is uniform: about 5 % of 200 tests below 0.05
+    ps = np.array([compare.protest(rng.normal(size=(12, 2)), rng.normal(size=(12, 2)), permutations=499,
+                                   seed=k)["p_value"] for k in range(200)])
+    print("null rejection rate", np.mean(ps <= 0.05), "mean p", ps.mean())
+    assert np.mean(ps <= 0.05) <= 0.09  # binomial(200, 0.05): 0.09 is about 2.6 SE above 5 %
+    assert 0.42 <= ps.mean() <= 0.58
+
+
+def test_brand_map_records_protest_for_each_alignment():
+    consumer = random_profiles(31)
+    owned = {b: {a: v + 0.02 * k for k, (a, v) in enumerate(p.items())} for b, p in consumer.items()}
+    tables, notes = compare.compare_study(make_shares(consumer, owned))
+    bm = tables["brand_map"]
+    owned_rows = bm[bm["source"] == "owned"]
+    # 6 brands: exact over 720 orderings; the same map is the best ordering: p = 2/720 at most
+    assert owned_rows["protest_method"].iloc[0].startswith("exact (all 720")
+    assert owned_rows["protest_p"].iloc[0] <= 2 / 720 + 1e-12
+    assert bm.loc[bm["source"] == "consumer", "protest_p"].isna().all()
+    assert any("PROTEST p 0.00" in n or "PROTEST p < 0.001" in n for n in notes)
+
+
+def test_bootstrap_names_a_brand_only_when_it_moves_most_in_most_replicates():
+    consumer = random_profiles(31)
+    # planted: Cora's owned photos flip its profile; every other brand the same in truth
+    owned = {b: dict(p) for b, p in consumer.items()}
+    owned["Cora"] = {a: 1.0 - v for a, v in consumer["Cora"].items()}
+    images, attrs, shares = image_level(consumer, owned, 80, seed=1)
+    tables, notes = compare.compare_study(shares, images=images, image_attributes=attrs, map_replicates=200)
+    disp = tables["brand_displacement"].set_index("brand")
+    print(disp[["displacement", "displacement_low", "displacement_high", "moves_most_share"]])
+    assert disp["moves_most_share"].idxmax() == "Cora" and disp.loc["Cora", "moves_most_share"] >= 0.8
+    assert disp["moves_most_share"].sum() == pytest.approx(1.0)
+    assert (disp["displacement_low"] <= disp["displacement"] + 1e-9).sum() >= 5
+    assert any("moves most: Cora" in n and "bootstrap replicates" in n for n in notes)
+    spread = tables["brand_map_bootstrap"]
+    assert len(spread) == 12 and (spread["replicates"] == 200).all() and (spread["resampled"] == "photos").all()
+    assert (spread["ellipse_width"] > 0).all() and (spread["x_low"] < spread["x_high"]).all()
+
+    # null: consumer and owned photos drawn from the same truth; displacement is
+    # noise, and no brand moves most in 80 % of the replicates
+    images, attrs, shares = image_level(consumer, consumer, 80, seed=2)
+    tables, notes = compare.compare_study(shares, images=images, image_attributes=attrs, map_replicates=200)
+    line = next(n for n in notes if n.startswith("brand map, consumer -> owned"))
+    print(line)
+    assert "no brand moves most in at least 80 %" in line and "moves most:" not in line
+    assert tables["brand_displacement"]["moves_most_share"].max() < 0.8
+
+
+def test_bootstrap_resamples_posters_when_the_images_table_names_them():
+    # Perfectly clustered photos (8 posters x 10 identical photos per cell):
+    # resampling photos pretends there are 80 independent photos and shows too
+    # little spread; resampling posters (a cluster bootstrap, Davison and
+    # Hinkley 1997, 3.8) shows the spread of 8. Expected ratio about
+    # sqrt(80 / 8) = 3.2 for a share's standard error; judged at > 1.8.
+    consumer = random_profiles(41)
+    images, attrs, shares = image_level(consumer, consumer, 80, seed=5, posters=8)
+    by_poster, _ = compare.compare_study(shares, images=images, image_attributes=attrs, map_replicates=150)
+    as_photos, notes = compare.compare_study(shares, images=images.assign(poster=""), image_attributes=attrs,
+                                             map_replicates=150)
+    wide = by_poster["brand_map_bootstrap"]
+    narrow = as_photos["brand_map_bootstrap"]
+    assert set(wide["resampled"]) == {"posters"} and set(narrow["resampled"]) == {"photos"}
+    ratio = (wide["x_high"] - wide["x_low"]).median() / (narrow["x_high"] - narrow["x_low"]).median()
+    print("poster / photo bootstrap range ratio", ratio)
+    assert ratio > 1.8
+    assert any("photos assumed independent" in n for n in notes)
 
 
 def test_identical_sources_align_exactly():
@@ -402,8 +693,10 @@ def test_vector_map_uses_cosine_distances_of_mean_vectors():
     assert any("most different: Brio" in n for n in notes)
 
 
-def test_summary_names_best_and_worst_attributes(tmp_path):
-    consumer = random_profiles(61)
+def test_summary_names_best_and_worst_attributes_only_with_enough_brands(tmp_path):
+    rng = np.random.default_rng(61)
+    five = ["Gala", "Hale", "Iris", "Jade", "Kilo"]  # one category ("other") of 5 brands: 10 pairs
+    consumer = {b: {a: float(rng.uniform(0.05, 0.95)) for a in ATTRIBUTES} for b in five}
     rows = []
     for b, per in consumer.items():
         for a, v in per.items():
@@ -415,9 +708,20 @@ def test_summary_names_best_and_worst_attributes(tmp_path):
     line = next(n for n in notes if n.startswith("agreement consumer photos vs survey"))
     print(line)
     best, worst = line.split("; worst ")
-    assert "sincere (0/6 pairs)" in worst and "sincere" not in best
+    assert "sincere (0/10 pairs)" in worst and "sincere" not in best
     per = compare.attribute_agreement(tables["agreement"], "consumer_share", "survey_score")
     assert per.iloc[-1]["attribute"] == "sincere" and per.iloc[0]["concordant_share"] == 1.0
+    # the perfect agreements of 5 brands: exact p = 2/120 each, BH over the 5 x 3 family
+    assert any(n.startswith("agreement tests:") and "of 15 significant" in n for n in notes)
+
+    # 3 brands per category (pooled 6 brands, 6 pairs): counts only, no "best" or "worst"
+    consumer = random_profiles(61)
+    write_survey(path, [f"{b},{a},{(-v if a == 'sincere' else v) * 10:.4f}" for b, per in consumer.items()
+                        for a, v in per.items()])
+    _, notes = compare.compare_study(make_shares(consumer), survey=compare.read_survey(path))
+    line = next(n for n in notes if n.startswith("agreement consumer photos vs survey"))
+    assert "counts only" in line and "best" not in line.split(":", 1)[1].replace("best/worst", "")
+    assert "worst " not in line.replace("best/worst", "")
 
 
 def test_profile_distance_is_rms_of_standardised_profile_differences():
@@ -501,3 +805,42 @@ def test_demo_survey_agrees_where_planted_and_the_contradicted_brand_stands_out(
     source_brand = brands.loc[brands["consumer_favours"].fillna("") != "", "brand"].tolist()
     assert len(source_brand) == 1
     assert disp["vector_distance"].idxmax() == source_brand[0]
+
+
+def test_p_values_are_never_printed_as_zero():
+    # Common practice (e.g. APA style): report p below 0.001 as "< 0.001", never "p = 0".
+    assert compare.format_p(0.0) == "< 0.001" and compare.format_p(3e-12) == "< 0.001"
+    assert compare.format_p(0.0123) == "0.012" and compare.format_p(float("nan")) == "–"
+    from explore.report.page import html_table
+
+    cells = html_table(pd.DataFrame({"p_value": [1e-15, 0.2], "kendall_q": [0.0, 0.04], "share": [0.0, 0.5]}))["rows"]
+    assert cells[0][:2] == ["< 0.001", "< 0.001"] and cells[1][:2] == ["0.200", "0.040"]
+
+
+@pytest.mark.slow
+def test_demo_report_prints_no_p_value_from_fewer_than_5_brands_and_shows_stability(demo_run):
+    # The demo has 3 brands per category (6 in all): within-category agreement
+    # rows are counts only; the pooled 6-brand rows carry exact p-values.
+    import html
+    import json
+    import re
+
+    agreement = pd.read_parquet(demo_run / "agreement.parquet")
+    small = agreement["n_brands"] < 5
+    assert small.any() and agreement.loc[small, ["kendall_p", "spearman_p", "pearson_p"]].isna().all().all()
+    assert agreement.loc[~small, "p_method"].str.startswith("exact permutation").all()
+    text = (demo_run / "report.html").read_text(encoding="utf-8")
+    assert not re.search(r"\bp 0(?![.\d])", text)  # "p 0" alone; "p 0.244" is fine
+    section = text[text.index('id="comparisons"'):]
+    for row in re.findall(r"<tr>(.*?)</tr>", section, re.S):
+        cells = [html.unescape(re.sub("<.*?>", "", c)).strip() for c in re.findall(r"<td[^>]*>(.*?)</td>", row, re.S)]
+        if len(cells) > 7 and cells[3].isdigit() and int(cells[3]) < 5:
+            assert not any("(p " in c for c in cells), cells
+    notes = json.loads((demo_run / "run.json").read_text(encoding="utf-8"))["notes"]
+    stability = [n for n in notes if n.startswith("contexts: stability:")]
+    print(stability)
+    assert stability and "adjusted Rand index" in stability[0]
+    assert "adjusted Rand index is" in text
+    protest_line = next(n for n in notes if n.startswith("compare: brand map, consumer -> owned"))
+    print(protest_line)
+    assert "PROTEST p" in protest_line and "bootstrap replicates" in protest_line

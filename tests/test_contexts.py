@@ -146,6 +146,117 @@ def test_brand_table_tests_only_real_contexts_and_lone_brands_are_untested():
     assert (counts.total == counts.n).all()
 
 
+def test_bh_family_leaves_out_rows_below_min_count():
+    # Independent filtering (Bourgon, Gentleman and Huber 2010): rows whose
+    # category count is below min_count are not in the BH family. Reference:
+    # statsmodels multipletests(fdr_bh) over the rows that pass the filter only;
+    # dropping the filter would adjust over more rows and change these q-values.
+    from statsmodels.stats.multitest import multipletests
+
+    rng = np.random.default_rng(11)
+    n = 400
+    images = pd.DataFrame({"brand": rng.choice(["A", "B", "C"], n), "category": "c",
+                           "source": rng.choice(["consumer", "owned"], n)})
+    labels = rng.choice([1, 2, 3, 4, 5, 6], n, p=[0.4, 0.3, 0.2, 0.06, 0.03, 0.01])
+    labels[(images.brand == "A").to_numpy() & (labels == 1)] = 2  # one real difference
+    table = ctx.brand_context_table(images, labels, min_margin=5)
+    cat_count = table["count"] + table["rest_count"]
+    family = table["p_value"].notna() & (cat_count >= 5)
+    assert (~family & table["p_value"].notna()).any()  # the filter removes some tested rows
+    assert table.loc[~family, "q_value"].isna().all()
+    ref = multipletests(table.loc[family, "p_value"], method="fdr_bh")[1]
+    np.testing.assert_allclose(table.loc[family, "q_value"], ref, rtol=1e-12)
+    gaps = ctx.source_context_gaps(images, labels, ContextSettings(min_count=5))
+    fam = gaps["p_value"].notna() & ((gaps["consumer_count"] + gaps["owned_count"]) >= 5)
+    assert (~fam & gaps["p_value"].notna()).any()
+    np.testing.assert_allclose(gaps.loc[fam, "q_value"], multipletests(gaps.loc[fam, "p_value"], method="fdr_bh")[1],
+                               rtol=1e-12)
+    assert gaps.loc[~fam, "q_value"].isna().all()
+
+
+def test_poster_permutation_equals_an_independent_enumeration():
+    # Independent computation written here with plain loops: every way of
+    # choosing which posters are the brand's (itertools.combinations), the
+    # statistic |brand share - rest share| of photos in a context, p = share
+    # of splits at least as extreme (a cluster permutation test).
+    import itertools
+
+    posters = {"p1": ("A", [1, 1, 1, 2]), "p2": ("A", [1, 1]), "p3": ("B", [2, 2, 1]),
+               "p4": ("B", [3, 2]), "p5": ("B", [2, 3, 3, 3]), "p6": ("B", [1])}
+    rows, labels = [], []
+    for poster, (brand, ctxs) in posters.items():
+        for c in ctxs:
+            rows.append({"brand": brand, "category": "k", "source": "consumer", "poster": poster})
+            labels.append(c)
+    images, labels = pd.DataFrame(rows), np.array(labels)
+    table = ctx.brand_context_table(images, labels)
+    names = list(posters)
+    photos = {p: np.array(v[1]) for p, v in posters.items()}
+    for c in (1, 2, 3):
+        def stat(group):
+            g = np.concatenate([photos[p] for p in group])
+            r = np.concatenate([photos[p] for p in names if p not in group])
+            return abs(np.mean(g == c) - np.mean(r == c))
+        observed = stat(["p1", "p2"])
+        splits = list(itertools.combinations(names, 2))
+        expected = sum(stat(list(s)) >= observed - 1e-12 for s in splits) / len(splits)
+        got = table[(table.brand == "A") & (table.source == "consumer") & (table.context_id == c)]
+        assert got["p_value"].item() == pytest.approx(expected, abs=1e-15)
+        assert got["test"].item().startswith("poster permutation")
+    # without posters the same rows get Fisher's test (photos assumed independent)
+    plain = ctx.brand_context_table(images.assign(poster=""), labels)
+    assert (plain.loc[plain.p_value.notna(), "test"] == ctx.FISHER_TEST).all()
+
+
+def test_poster_permutation_holds_its_level_where_fisher_does_not():
+    # Simulation with known truth (no brand effect): posters choose contexts
+    # (every photo of a poster in the poster's context: complete clustering),
+    # 12 posters x 6 photos per brand. Fisher's test, treating 72 photos as
+    # independent, rejects far too often; the poster permutation keeps close
+    # to the nominal 5 %.
+    rng = np.random.default_rng(21)
+    fisher_hits = poster_hits = tests = 0
+    for rep in range(60):
+        rows, labels = [], []
+        for brand in ("A", "B"):
+            for k in range(12):
+                c = int(rng.choice([1, 2], p=[0.5, 0.5]))
+                for _ in range(6):
+                    rows.append({"brand": brand, "category": "k", "source": "consumer", "poster": f"{brand}{k}"})
+                    labels.append(c)
+        images = pd.DataFrame(rows)
+        labels = np.array(labels)
+        t = ctx.brand_context_table(images, labels, seed=rep)
+        f = ctx.brand_context_table(images.assign(poster=""), labels)
+        pick = (t.brand == "A") & (t.source == "consumer") & (t.context_id == 1)
+        poster_hits += int(t.loc[pick, "p_value"].item() <= 0.05)
+        fisher_hits += int(f.loc[pick, "p_value"].item() <= 0.05)
+        tests += 1
+    print(f"false positives at 5 %: Fisher {fisher_hits}/{tests}, poster permutation {poster_hits}/{tests}")
+    assert fisher_hits / tests >= 0.2  # seen: 20 of 60
+    assert poster_hits / tests <= 0.12
+
+
+def test_stability_ari_is_on_images_assigned_in_both(monkeypatch):
+    # By definition (Hubert and Arabie 1985) identical partitions have ARI 1:
+    # the refit below agrees with the main fit on every image both assign, and
+    # differs only where the main fit left images unassigned, so ari must be
+    # exactly 1 and the stricter ari_with_unassigned below 1.
+    main = np.array([1, 1, 1, 2, 2, 2, 3, 3, -1, -1, -1])
+    other = np.array([2, 2, 2, 1, 1, 1, 3, 3, 1, 2, 3])  # renumbered, plus the main fit's unassigned
+
+    def fake_fit(vectors, settings, seed=0):
+        return ctx.ContextFit(other[: len(vectors)], np.ones(len(vectors)), np.zeros((len(vectors), 2)),
+                              np.zeros((len(vectors), 2)))
+
+    monkeypatch.setattr(ctx, "find_contexts", fake_fit)
+    st = ctx.context_stability(np.ones((11, 4)), main, ContextSettings(), seed=3).iloc[0]
+    assert (st["refit_seed"], st["both_assigned"], st["main_contexts"], st["refit_contexts"]) == (4, 8, 3, 3)
+    assert st["ari"] == pytest.approx(1.0, abs=1e-12)
+    assert st["ari_with_unassigned"] < 0.9
+    assert st["main_unassigned_share"] == pytest.approx(3 / 11)
+
+
 def _finding_table() -> pd.DataFrame:
     """Hand-made brand x context rows (counts chosen so every rule is exercised)."""
     rows = [
@@ -358,7 +469,20 @@ def test_run_contexts_tables(blobs):
     tables = ctx.run_contexts(shuffled, list(images.image_id), x, x, ContextSettings(), seed=7,
                               encode_texts=encode_texts, encoder_id="test-encoder")
     assert set(tables) == {"image_contexts", "contexts", "brand_contexts", "signature_contexts",
-                           "unexpected_contexts", "source_context_gaps"}
+                           "unexpected_contexts", "source_context_gaps", "context_stability"}
+    # stability: a refit on seed 8, compared on the images assigned in both
+    # (reference: sklearn.metrics.adjusted_rand_score on a refit done here)
+    from sklearn.metrics import adjusted_rand_score
+
+    st = tables["context_stability"].iloc[0]
+    other = ctx.find_contexts(x, ContextSettings(), seed=8).labels
+    main = tables["image_contexts"].set_index("image_id").loc[list(images.image_id), "context_id"].to_numpy()
+    both = (main >= 0) & (other >= 0)
+    assert (st["main_seed"], st["refit_seed"], st["both_assigned"]) == (7, 8, both.sum())
+    assert st["ari"] == pytest.approx(adjusted_rand_score(main[both], other[both]), abs=1e-12)
+    assert st["ari"] >= 0.9  # well-separated blobs do not change with the seed
+    assert any("stability" in n and "adjusted Rand index" in n for n in ctx.describe(tables))
+    assert (tables["brand_contexts"]["test"].replace("", np.nan).dropna() == ctx.FISHER_TEST).all()
     ic, cx = tables["image_contexts"], tables["contexts"]
     assert list(ic.columns) == ["image_id", "context_id", "context", "membership", "map_x", "map_y"]
     assert len(ic) == n and list(ic.image_id) == list(images.image_id)

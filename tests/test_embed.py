@@ -162,25 +162,27 @@ def test_no_usable_images(tmp_path):
     assert len(emb) == 0 and stats.embedded == 0
 
 
-def test_file_gone_since_collect_is_a_clear_error(tmp_path):
+def test_file_gone_since_collect_is_skipped_with_its_reason(tmp_path):
     make_tree(tmp_path / "photos", 3)
     table = collect.collect_images(tmp_path / "photos", progress=False)
     gone = Path(table.loc[1, "path"])
     gone.unlink()
-    with pytest.raises(EmbedError, match=f"{gone.name}.*no longer exists.*run again"):
-        embed_table(table, FakeEncoder(), tmp_path / "cache", batch_size=1, progress=False)
-    # What was embedded before the error is kept.
+    emb, stats = embed_table(table, FakeEncoder(), tmp_path / "cache", batch_size=1, progress=False)
+    sha = table.loc[1, "sha256"]
+    assert stats.skipped[sha][0] == "missing" and "no longer exists" in stats.skipped[sha][1]
+    assert table.loc[1, "image_id"] not in emb.image_ids and len(emb) == len(table) - 1
     with EmbeddingCache(tmp_path / "cache", "fake-v1") as cache:
-        assert table.loc[0, "sha256"] in cache
+        assert table.loc[0, "sha256"] in cache and sha not in cache
 
 
-def test_file_changed_since_collect_is_never_cached_under_the_old_hash(tmp_path):
+def test_file_changed_since_collect_is_skipped_never_cached_under_the_old_hash(tmp_path):
     make_tree(tmp_path / "photos", 2)
     table = collect.collect_images(tmp_path / "photos", progress=False)
     changed = Path(table.loc[1, "path"])
     photo(999).save(changed, quality=90)  # still a fine image, other content
-    with pytest.raises(EmbedError, match=f"{changed.name}.*changed since it was collected"):
-        embed_table(table, FakeEncoder(), tmp_path / "cache", batch_size=1, progress=False)
+    emb, stats = embed_table(table, FakeEncoder(), tmp_path / "cache", batch_size=2, progress=False)
+    assert stats.skipped[table.loc[1, "sha256"]] == ("changed", "the file's content changed since it was collected")
+    assert emb.image_ids == [i for i in table.loc[table["status"] == "ok", "image_id"] if i != table.loc[1, "image_id"]]
     with EmbeddingCache(tmp_path / "cache", "fake-v1") as cache:
         assert table.loc[0, "sha256"] in cache and table.loc[1, "sha256"] not in cache
 

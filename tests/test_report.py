@@ -15,6 +15,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -100,7 +101,7 @@ def test_every_usable_image_gets_a_small_thumbnail(built):
     # run.json of the fixture asks for 96 px thumbnails.
     for b64 in list(thumbs.values())[:10]:
         im = Image.open(io.BytesIO(base64.b64decode(b64)))
-        assert im.format == "JPEG" and max(im.size) <= 96
+        assert im.format == "WEBP" and max(im.size) <= 96
 
 
 def test_points_match_the_image_contexts_table(built):
@@ -175,6 +176,23 @@ def test_thumbnail_cap_keeps_every_exemplar_and_is_seeded():
     assert not under.sampled and under.ids == ids
 
 
+def test_thumbnail_sample_is_stratified_so_small_groups_are_represented():
+    # 1,000 images: one big stratum of 990 and ten of one image each; cap 50.
+    ids = [f"img{i:04d}" for i in range(1000)]
+    strata = ["big"] * 990 + [f"tiny{k}" for k in range(10)]
+    choice = choose_thumbnail_ids(ids, [], cap=50, seed=1, strata=strata)
+    picked = set(choice.ids)
+    assert all(f"img{990 + k:04d}" in picked for k in range(10))  # every small stratum is represented
+    # One each first, then the remaining 40 to the big stratum: the cap holds exactly.
+    assert len(picked) == 50 and sum(1 for i in ids[:990] if i in picked) == 40
+    # Proportional beyond the minimum: strata of 600 and 300 share 90 - 2 as 59 + 29 (+1 each).
+    two = choose_thumbnail_ids(ids[:900], [], cap=90, seed=2, strata=["a"] * 600 + ["b"] * 300)
+    assert sum(1 for i in two.ids if i < "img0600") == 60 and len(two.ids) == 90
+    # Without strata a plain random sample of 50 would miss most of the ten (expected 0.5 of them).
+    plain = set(choose_thumbnail_ids(ids, [], cap=50, seed=1).ids)
+    assert sum(1 for i in ids[990:] if i in plain) < 10
+
+
 def test_report_over_the_cap_says_it_sampled(tmp_path):
     out = synth.make_output_folder(tmp_path, 60)
     run = json.loads((out / "run.json").read_text())
@@ -218,7 +236,7 @@ def test_not_an_output_folder(tmp_path):
 def test_thumbnail_cache_makes_rebuilds_reuse_thumbnails(tmp_path):
     out = synth.make_output_folder(tmp_path, 20)
     first = _embedded(write_report(out).read_text(encoding="utf-8"), "explore-thumbs")
-    cache = out / "cache" / "thumbnails_96_faces_blurred.parquet"  # faces blurred by default
+    cache = out / "cache" / "thumbnails_96_faces_blurred_webp.parquet"  # faces blurred by default
     assert cache.is_file() and len(pd.read_parquet(cache)) == 20
     # Remove the photos: a rebuild still has every thumbnail, from the cache.
     for p in pd.read_parquet(out / "images.parquet")["path"]:
@@ -231,7 +249,9 @@ def test_cli_report_command_on_an_output_folder(tmp_path):
     out = synth.make_output_folder(tmp_path, 20)
     done = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(out)], capture_output=True, text=True)
     assert done.returncode == 0, done.stderr
-    assert done.stdout.strip() == f"report: {out / 'report.html'}"
+    lines = done.stdout.strip().splitlines()
+    assert lines[0] == f"report: {out / 'report.html'}"
+    assert lines[1].startswith("findings (only results that pass the study's tests")
     bad = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(tmp_path / "none.toml")],
                          capture_output=True, text=True)
     assert bad.returncode == 2 and "study file not found" in bad.stderr
@@ -254,3 +274,49 @@ def test_thumbnail_follows_exif_orientation_and_keeps_aspect(tmp_path):
     assert make_thumbnail(tmp_path / "missing.jpg", 64) is None
     (tmp_path / "broken.jpg").write_bytes(b"\xff\xd8 not really a jpeg")
     assert make_thumbnail(tmp_path / "broken.jpg", 64) is None
+
+
+def test_heatmap_marks_significant_cells_and_greys_untested_ones():
+    from explore.report import figures
+
+    bc = pd.DataFrame({
+        "brand": ["A", "A", "B"], "context_id": [1, 2, 1], "context": ["beach", "gym", "beach"],
+        "count": [30, 1, 5], "brand_n": [90, 90, 90], "share": [0.33, 0.01, 0.05],
+        "category_share": [0.2, 0.01, 0.2], "index": [165.0, 100.0, 25.0],
+        "q_value": [0.001, np.nan, 0.2],  # significant, untested (too few photos), tested and not significant
+    })
+    fig = figures.context_heatmap(bc, ["A", "B"], [(1, "beach"), (2, "gym")], fdr=0.05)
+    from bokeh.models import ColumnDataSource
+
+    data = next(s for s in fig.select({"type": ColumnDataSource}) if "judged" in s.data).data
+    assert list(data["index_text"]) == ["165*", "–", "25"]
+    assert list(data["judged"]) == ["significant after correction", "too few photos to test", "tested, not significant"]
+    assert list(data["outline_alpha"]) == [1.0, 0.0, 0.0]
+    assert data["color"][1] == "#e6e3dd" and data["color"][0] != data["color"][1]
+
+
+def test_pdf_option_says_what_to_do_without_chromium(tmp_path):
+    out = synth.make_output_folder(tmp_path, 20)
+    env = {**__import__("os").environ, "EXPLORE_CHROMIUM": str(tmp_path / "no-such-chromium")}
+    done = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(out), "--pdf"],
+                          capture_output=True, text=True, env=env)
+    assert done.returncode == 2
+    assert "headless Chromium was not found" in done.stderr and "apt-get install -y chromium" in done.stderr
+    assert (out / "report.html").is_file() and not (out / "report.pdf").exists()
+
+
+@pytest.mark.skipif(not Path("/usr/bin/chromium").exists(), reason="Debian's chromium is not installed (/usr/bin/chromium)")
+def test_pdf_option_prints_every_chart_as_one_picture(tmp_path):
+    pdfplumber = pytest.importorskip("pdfplumber")
+    out = synth.make_output_folder(tmp_path, 40)
+    done = subprocess.run([sys.executable, "-m", "explore.cli", "report", str(out), "--pdf", "--paper", "Letter-landscape"],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip().splitlines()[-1] == f"pdf: {out / 'report.pdf'}"
+    n_charts = (out / "report.html").read_text(encoding="utf-8").count('<div class="chart" data-chart=')
+    with pdfplumber.open(out / "report.pdf") as pdf:
+        first = pdf.pages[0]
+        assert round(first.width) == 792 and round(first.height) == 612  # Letter landscape, in points
+        charts = [im for pg in pdf.pages for im in pg.images if im["srcsize"][0] > 300]
+    assert len(charts) == n_charts > 0
+    assert not list(out.glob(".*.print.html"))  # the staged copy is removed

@@ -83,6 +83,14 @@ def map_js(page, body: str):
     )
 
 
+#: The map's colour column as one text per point: the report writes it as an n x 4 RGBA byte
+#: array, the page's recolouring as CSS colour strings.
+COLOURS_JS = """const c = src.data.color;
+    if (typeof c[0] === 'string') return Array.from(c);
+    const out = []; for (let k = 0; k < c.length / 4; k++) out.push('rgb' + [c[4 * k], c[4 * k + 1], c[4 * k + 2]].join(','));
+    return out;"""
+
+
 def shoot(page, selector: str, name: str) -> None:
     """Screenshot of one section as laid out on the full page (the sticky bar stays at the top)."""
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
@@ -149,7 +157,7 @@ def test_hovering_a_point_shows_its_thumbnail(opened, synthetic_report):
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
     opened.page.screenshot(path=str(ARTIFACTS / "synthetic-map-hover.png"))
     src = card.locator("img").get_attribute("src")
-    assert src.startswith("data:image/jpeg;base64,")
+    assert src.startswith("data:image/webp;base64,")
     text = card.inner_text()
     assert images.loc[ic["image_id"].iloc[k], "brand"] in text
     assert "context:" in text
@@ -159,11 +167,11 @@ def test_hovering_a_point_shows_its_thumbnail(opened, synthetic_report):
 
 def test_colour_selector_recolours_the_points(opened, synthetic_report):
     out, _ = synthetic_report
-    before = map_js(opened.page, "return Array.from(src.data.color);")
+    before = map_js(opened.page, COLOURS_JS)
     contexts = pd.read_parquet(out / "contexts.parquet")
     assert len(set(before)) == int((contexts["context_id"] >= 0).sum()) + 1  # one colour per context, plus unassigned
     opened.page.select_option("#colour-select", "brand")
-    after = map_js(opened.page, "return Array.from(src.data.color);")
+    after = map_js(opened.page, COLOURS_JS)
     assert after != before
     ic = pd.read_parquet(out / "image_contexts.parquet")
     brands = pd.read_parquet(out / "images.parquet").set_index("image_id").loc[ic["image_id"], "brand"].to_numpy()
@@ -171,7 +179,7 @@ def test_colour_selector_recolours_the_points(opened, synthetic_report):
     pairs = set(zip(brands, after))
     assert len(pairs) == len(set(brands)) == len(set(after))
     opened.page.select_option("#colour-select", "attr:0")
-    ramp = map_js(opened.page, "return Array.from(src.data.color);")
+    ramp = map_js(opened.page, COLOURS_JS)
     assert len(set(ramp)) > 20  # a continuous scale gives many shades
     assert "probability" in opened.page.locator("#map-legend").inner_text()
 
@@ -250,7 +258,12 @@ def test_brand_view_follows_the_picker(opened, synthetic_report):
     assert opened.page.locator(".bv-brand").first.inner_text() == brand
     bc = pd.read_parquet(out / "brand_contexts.parquet")
     rows = bc[(bc["brand"] == brand) & (bc["source"] == "all") & (bc["context_id"] >= 0)]
-    assert opened.page.locator("#bv-contexts .bv-row").count() == len(rows)
+    assert opened.page.locator("#bv-contexts .bv-row:not(.bv-unassigned)").count() == len(rows)
+    # photos in no context: a row of their own, with advice above 30 %
+    un = bc[(bc["brand"] == brand) & (bc["source"] == "all") & (bc["context_id"] < 0)]
+    has_un = len(un) > 0 and int(un["count"].iloc[0]) > 0
+    assert opened.page.locator("#bv-contexts .bv-unassigned").count() == int(has_un)
+    assert opened.page.locator("#bv-contexts .bv-advice").count() == int(has_un and float(un["share"].iloc[0]) > 0.3)
     top = rows.sort_values("share", ascending=False).iloc[0]
     assert opened.page.locator("#bv-contexts .bv-index").first.inner_text() == f"{top['index']:.0f}"
     shoot(opened.page, "#brand-view", "synthetic-brand-view.png")
@@ -317,8 +330,13 @@ def test_demo_report_in_the_browser(browser, request):
     out = Path(request.getfixturevalue("demo_run"))
     # `explore demo` ends by printing the report's path (the fixture keeps its stdout).
     stdout = (out / "demo_stdout.txt").read_text(encoding="utf-8")
-    last = [line for line in stdout.splitlines() if line.strip()][-1]
-    assert last == f"report: {out.resolve() / 'report.html'}", last
+    assert f"report: {out.resolve() / 'report.html'}" in stdout.splitlines(), stdout[-2000:]
+    # ... followed by the closing summary: the report's findings, the same sentences as findings.csv.
+    findings = pd.read_csv(out / "findings.csv")
+    tail = stdout.split(f"report: {out.resolve() / 'report.html'}", 1)[1]
+    assert "findings (only results that pass the study's tests" in tail
+    for sentence in findings["sentence"]:
+        assert sentence in tail, sentence
     path = out / "report.html"
     assert path.is_file(), f"the demo run wrote no report at {path}"
     size = path.stat().st_size
@@ -337,12 +355,12 @@ def test_demo_report_in_the_browser(browser, request):
         p.mouse.move(sx - 30, sy - 30)
         p.mouse.move(sx, sy, steps=5)
         p.locator("#hover-card").wait_for(state="visible", timeout=5000)
-        assert p.locator("#hover-card img").get_attribute("src").startswith("data:image/jpeg;base64,")
+        assert p.locator("#hover-card img").get_attribute("src").startswith("data:image/webp;base64,")
         p.mouse.move(5, 5)
         # The colour selector recolours.
-        before = map_js(p, "return Array.from(src.data.color);")
+        before = map_js(p, COLOURS_JS)
         p.select_option("#colour-select", "source")
-        assert map_js(p, "return Array.from(src.data.color);") != before
+        assert map_js(p, COLOURS_JS) != before
         # A box over the left half of the frame fills the gallery with what it encloses.
         ax, ay, bx, by = map_js(p, """
             const r = view.canvas_view.el.getBoundingClientRect(); const f = view.frame.bbox;
@@ -401,3 +419,121 @@ def test_report_without_stage_tables_opens_clean(browser, tmp_path):
         assert page.page.locator("#brand-select option").count() == 4
     finally:
         page.close()
+
+
+# --------------------------------------------------------------------------
+# Manager-ready report (issue 17): findings, print, chart export, photo viewer
+
+
+def _first_number(text: str) -> float:
+    import re
+
+    m = re.search(r"[−+-]?\d+(?:\.\d+)?", text.replace("\u2212", "-"))
+    assert m, text
+    return float(m.group(0).replace("−", "-"))
+
+
+@pytest.mark.slow
+def test_demo_findings_match_the_csv_and_print_to_pdf(browser, request, tmp_path):
+    """Findings block: one entry per findings.csv row with the same number (and that number
+    recomputed from the counts in signature_contexts / source_context_gaps); page.pdf on A4
+    portrait and Letter landscape: every chart printed as one picture inside one page."""
+    import pdfplumber
+
+    out = Path(request.getfixturevalue("demo_run"))
+    findings = pd.read_csv(out / "findings.csv")
+    assert len(findings) > 0
+    page = Opened(browser, out / "report.html")
+    try:
+        p = page.page
+        p.wait_for_function("document.body.getAttribute('data-print-ready') === '1'", timeout=60_000)
+        shown = p.evaluate("""() => Array.from(document.querySelectorAll('#findings .finding')).map(li => ({
+            brand: li.closest('.finding-brand').dataset.brand, rank: +li.dataset.rank,
+            value: li.dataset.value === undefined ? null : +li.dataset.value,
+            text: li.querySelector('.finding-text').textContent}))""")
+        assert len(shown) == len(findings)
+        sig = pd.read_csv(out / "signature_contexts.csv")
+        gaps = pd.read_csv(out / "source_context_gaps.csv")
+        for item in shown:
+            row = findings[(findings["brand"] == item["brand"]) & (findings["rank"] == item["rank"])].iloc[0]
+            assert item["text"] == row["sentence"]
+            assert item["value"] == pytest.approx(row["value"])
+            digits = 1 if row["n"] >= 1000 else 0
+            if row["kind"] in ("signature context", "unexpected context"):
+                # The sentence opens with the share; recomputed here from the signature table's counts.
+                src = sig[(sig["brand"] == row["brand"]) & (sig["context_id"] == row["context_id"]) & (sig["source"] == row["source"])].iloc[0]
+                assert _first_number(item["text"]) == round(100 * src["count"] / src["brand_n"], digits)
+            elif row["kind"] == "consumer vs owned context":
+                src = gaps[(gaps["brand"] == row["brand"]) & (gaps["context_id"] == row["context_id"])].iloc[0]
+                gap = src["consumer_count"] / src["consumer_n"] - src["owned_count"] / src["owned_n"]
+                assert f"difference {100 * gap:+.{digits}f} points".replace("-", "\u2212") in item["text"]
+        # "see the photos" opens that brand's photos of that context.
+        p.locator("#findings .finding-photos").first.click()
+        p.locator("#photo-dialog").wait_for(state="visible", timeout=5000)
+        assert findings.sort_values(["brand", "rank"]).iloc[0]["brand"] in p.locator("#photo-dialog-title").inner_text()
+        p.locator("#photo-dialog-close").click()
+
+        n_charts = p.locator(".chart[data-chart]").count()
+        assert n_charts >= 5
+        pages = {}
+        for fmt, landscape in (("A4", False), ("Letter", True)):
+            pdf_path = tmp_path / f"demo-{fmt}-{'landscape' if landscape else 'portrait'}.pdf"
+            p.pdf(path=str(pdf_path), format=fmt, landscape=landscape, print_background=True)
+            with pdfplumber.open(pdf_path) as pdf:
+                pages[(fmt, landscape)] = len(pdf.pages)
+                charts = []
+                for number, pg in enumerate(pdf.pages):
+                    for im in pg.images:
+                        # Charts print as PNGs of at least 300 px; thumbnails are at most thumbnail_px (112).
+                        if im["srcsize"][0] > 300:
+                            charts.append((number, im))
+                # Each chart exactly once: a chart split over two pages would be drawn on both.
+                assert len(charts) == n_charts, (fmt, landscape, len(charts), n_charts)
+                for number, im in charts:
+                    pg = pdf.pages[number]
+                    assert im["x0"] >= -0.5 and im["x1"] <= pg.width + 0.5, (fmt, number, im["x0"], im["x1"], pg.width)
+                    assert im["top"] >= -0.5 and im["bottom"] <= pg.height + 0.5, (fmt, number, im["top"], im["bottom"])
+        # Stated in the README: the demo prints on 15-25 pages (one section or more per page).
+        assert all(10 <= n <= 30 for n in pages.values()), pages
+        print(f"demo PDF pages: {pages}")
+        assert page.errors == []
+        assert page.outside_requests() == []
+    finally:
+        page.close()
+
+
+def test_chart_png_export_and_photo_viewer(opened, synthetic_report):
+    """Save PNG on the heatmap downloads a PNG (checked by Pillow); clicking a context exemplar
+    opens the viewer with its larger copy and its brand, source and context."""
+    from PIL import Image
+
+    out, _ = synthetic_report
+    p = opened.page
+    with p.expect_download() as info:
+        p.locator('button.save-png[data-chart="context_heatmap"]').click()
+    data = Path(info.value.path()).read_bytes()
+    assert data[:8] == b"\x89PNG\r\n\x1a\n"
+    im = Image.open(io.BytesIO(data))
+    assert im.width > 300 and im.height > 150
+    # Not a blank canvas: the heatmap's cells give many colours.
+    assert len(im.convert("RGB").getcolors(maxcolors=1 << 20)) > 20
+    with p.expect_download() as info:
+        p.locator('button.save-svg[data-chart="context_heatmap"]').click()
+    assert Path(info.value.path()).read_text(encoding="utf-8").lstrip().startswith("<svg")
+    # Photo viewer.
+    images = pd.read_parquet(out / "images.parquet").set_index("image_id")
+    thumb = p.locator("#contexts .thumbs img.zoomable").first
+    image_id = thumb.get_attribute("data-id")
+    thumb.click()
+    box = p.locator("#lightbox")
+    box.wait_for(state="visible", timeout=5000)
+    facts = p.locator("#lightbox-facts").inner_text()
+    assert images.loc[image_id, "brand"] in facts and images.loc[image_id, "source"] in facts
+    assert "context" in facts
+    src = p.locator("#lightbox-img").get_attribute("src")
+    large = p.evaluate(f"JSON.parse(document.getElementById('explore-large').textContent)['{image_id}']")
+    assert large and src == "data:image/webp;base64," + large  # exemplars show their larger copy
+    p.keyboard.press("Escape")
+    box.wait_for(state="hidden", timeout=5000)
+    assert opened.errors == []
+    assert opened.outside_requests() == []

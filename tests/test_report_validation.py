@@ -13,7 +13,7 @@ from explore.report import write_report
 
 
 def _card(text: str, name: str) -> str:
-    m = re.search(rf'<article class="attr-card">\s*<h3>{re.escape(name)}</h3>(.*?)</article>', text, re.S)
+    m = re.search(rf'<article class="attr-card"[^>]*>\s*<h3>{re.escape(name)}</h3>(.*?)</article>', text, re.S)
     assert m, f"no card for {name}"
     return html.unescape(re.sub(r"<[^>]+>", " ", m.group(1)))
 

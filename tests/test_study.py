@@ -30,7 +30,7 @@ def test_minimal_study_gets_documented_defaults(tmp_path):
     assert (study.encoder.model, study.encoder.pretrained) == ("ViT-B-32-256", "datacomp_s34b_b86k")
     assert study.scoring.threshold == 0.5
     assert study.contexts.fdr == 0.05
-    assert study.report.max_thumbnails == 20000
+    assert study.report.max_thumbnails == 5000  # README [report]: keeps a 100k-image report under 30 MB
     assert study.category_of("Unlisted") == "all"
 
 

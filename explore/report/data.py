@@ -36,6 +36,8 @@ KNOWN_TABLES = (
     "brand_map_loadings",
     "brand_vector_map",
     "brand_displacement",
+    "brand_map_bootstrap",
+    "context_stability",
 )
 
 
@@ -73,6 +75,28 @@ class OutputFolder:
         return self.tables.get(name)
 
 
+def shown_names(table: pd.DataFrame) -> pd.DataFrame:
+    """Text cells with control and bidi characters made visible (``explore.printable``).
+
+    Names come from folder and file names; a right-to-left override would
+    reverse what the report shows. ``path`` is kept exact (thumbnails read it).
+    """
+    from explore.printable import UNSAFE, printable
+
+    for column in table.columns:
+        kind = table[column]
+        if column == "path" or not (pd.api.types.is_object_dtype(kind) or pd.api.types.is_string_dtype(kind)):
+            continue
+        values = table[column]
+        try:
+            unsafe = values.str.contains(UNSAFE.pattern, regex=True, na=False).astype(bool)
+        except (AttributeError, TypeError):  # not a text column after all
+            continue
+        if unsafe.any():
+            table[column] = values.where(~unsafe, values.map(lambda v: printable(v) if isinstance(v, str) else v))
+    return table
+
+
 def load_output(folder: str | Path) -> OutputFolder:
     """Load ``run.json`` and every known ``NAME.parquet`` present in ``folder``.
 
@@ -105,7 +129,7 @@ def load_output(folder: str | Path) -> OutputFolder:
         if not path.is_file():
             continue
         try:
-            out.tables[name] = pd.read_parquet(path)
+            out.tables[name] = shown_names(pd.read_parquet(path))
         except Exception as exc:  # a damaged file must not stop the rest of the report
             out.problems.append(f"{path}: could not be read ({type(exc).__name__}: {exc})")
     if not out.run and "images" not in out.tables:

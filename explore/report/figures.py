@@ -54,6 +54,15 @@ def _style(p) -> None:
 # Context map
 
 
+def rgba_array(colours: list[str]) -> np.ndarray:
+    """'#rrggbb' colours -> n x 4 uint8 RGBA (opaque)."""
+    palette = {c: (int(c[1:3], 16), int(c[3:5], 16), int(c[5:7], 16), 255) for c in set(colours)}
+    out = np.empty((len(colours), 4), dtype=np.uint8)
+    for k, c in enumerate(colours):
+        out[k] = palette[c]
+    return out
+
+
 def context_map(x: np.ndarray, y: np.ndarray, colours: list[str]):
     """WebGL scatter of the 2-D map, one glyph per plotted image.
 
@@ -77,12 +86,14 @@ def context_map(x: np.ndarray, y: np.ndarray, colours: list[str]):
     from bokeh.plotting import figure
 
     n = len(x)
+    # Colours as an n x 4 uint8 RGBA array and no initial filter list: binary columns that bokeh
+    # reads without parsing 100,000 strings (the page script may later set CSS colour strings).
     source = ColumnDataSource(
         data=dict(x=np.asarray(x, dtype=np.float32), y=np.asarray(y, dtype=np.float32),
-                  color=list(colours), i=np.arange(n, dtype=np.int32)),
+                  color=rgba_array(colours), i=np.arange(n, dtype=np.int32)),
         name="map_source",
     )
-    view = CDSView(filter=BooleanFilter(booleans=[True] * n, name="map_filter"))
+    view = CDSView(filter=BooleanFilter(booleans=None, name="map_filter"))
     box = BoxSelectTool()
     lasso = LassoSelectTool()
     wheel = WheelZoomTool()
@@ -126,8 +137,13 @@ def context_label(context_id, name) -> str:
     return f"{int(context_id)} · {name}"
 
 
-def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], context_order: list[tuple]):
+def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], context_order: list[tuple], fdr: float = 0.05):
     """Cells coloured by index (diverging around 100 on a log scale), counts on hover.
+
+    Cells significant after correction (BH ``q_value`` at most ``fdr``) get a
+    dark outline and a star; cells that were not tested (``q_value`` NaN: too
+    few photos in the category for the context, see ``min_count``) are grey
+    with a dash, so a strong colour from two photos is not read as a result.
 
     Parameters
     ----------
@@ -147,14 +163,22 @@ def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], conte
     if table.empty:
         return None
     index = table["index"].astype(float).to_numpy()
-    table["color"] = [diverging_index(v) for v in index]
-    table["index_text"] = [("–" if not np.isfinite(v) else f"{v:.0f}") for v in index]
+    q = table["q_value"].astype(float).to_numpy() if "q_value" in table else np.full(len(table), np.nan)
+    tested = np.isfinite(q)
+    significant = tested & (q <= fdr)
+    table["color"] = [diverging_index(v) if t else "#e6e3dd" for v, t in zip(index, tested)]
+    table["index_text"] = [("–" if not (np.isfinite(v) and t) else f"{v:.0f}" + ("*" if s else ""))
+                           for v, t, s in zip(index, tested, significant)]
+    table["judged"] = ["significant after correction" if s else ("tested, not significant" if t else "too few photos to test")
+                       for t, s in zip(tested, significant)]
+    table["outline_alpha"] = [1.0 if s else 0.0 for s in significant]
     table["share_pct"] = (100 * table["share"].astype(float)).round(1)
     table["category_pct"] = (100 * table["category_share"].astype(float)).round(1)
     table["q_text"] = [f"{q:.3g}" for q in table.get("q_value", pd.Series(np.nan, index=table.index)).astype(float)]
-    table["text_color"] = ["#ffffff" if np.isfinite(v) and abs(math.log2(max(v, 1e-9) / 100)) > 1.2 else INK for v in index]
+    table["text_color"] = ["#ffffff" if t and np.isfinite(v) and abs(math.log2(max(v, 1e-9) / 100)) > 1.2 else
+                           (INK if t else MUTED) for v, t in zip(index, tested)]
     cols = ["label", "brand", "context", "color", "index_text", "count", "brand_n", "share_pct", "category_pct",
-            "q_text", "text_color"]
+            "q_text", "text_color", "judged", "outline_alpha"]
     source = ColumnDataSource({c: table[c].tolist() for c in cols})
     cell = 44
     width = max(420, 260 + cell * len(x_factors))
@@ -169,13 +193,14 @@ def context_heatmap(brand_contexts: pd.DataFrame, brands_order: list[str], conte
         x_axis_location="above",
         min_border_right=90,  # the last slanted context name needs room
     )
-    p.rect("label", "brand", 0.94, 0.9, source=source, fill_color="color", line_color=None)
+    p.rect("label", "brand", 0.94, 0.9, source=source, fill_color="color", line_color=INK,
+           line_alpha="outline_alpha", line_width=2)
     p.text("label", "brand", text="index_text", source=source, text_align="center", text_baseline="middle",
            text_font_size="11px", text_color="text_color")
     p.add_tools(HoverTool(tooltips=[
         ("brand", "@brand"), ("context", "@context"), ("index", "@index_text"),
         ("photos", "@count of @brand_n"), ("brand share", "@share_pct %"),
-        ("category share", "@category_pct %"), ("q (BH)", "@q_text"),
+        ("category share", "@category_pct %"), ("q (BH)", "@q_text"), ("judged", "@judged"),
     ]))
     _style(p)
     p.xaxis.major_label_orientation = 0.9
@@ -275,12 +300,33 @@ def _percent_formatter():
 # Brand maps
 
 
-def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: str, name: str):
+def _ellipses(p, centres: pd.DataFrame, spread: pd.DataFrame | None, x: str, y: str, prefix: str, colour: str,
+              label: str | None = None):
+    """Draw each brand's 95 % bootstrap ellipse (``brand_map_bootstrap``) around its map position."""
+    if spread is None or spread.empty or f"{prefix}ellipse_width" not in spread:
+        return None
+    from bokeh.models import ColumnDataSource
+
+    m = centres[["brand", x, y]].merge(spread, on="brand").dropna(subset=[x, y, f"{prefix}ellipse_width"])
+    if m.empty:
+        return None
+    src = ColumnDataSource(dict(x=m[x].astype(float), y=m[y].astype(float),
+                                w=m[f"{prefix}ellipse_width"].astype(float), h=m[f"{prefix}ellipse_height"].astype(float),
+                                a=m[f"{prefix}ellipse_angle"].astype(float)))
+    kwargs = {"legend_label": label} if label else {}
+    return p.ellipse("x", "y", width="w", height="h", angle="a", source=src, fill_color=colour, fill_alpha=0.10,
+                     line_color=colour, line_alpha=0.55, line_dash="dashed", **kwargs)
+
+
+def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: str, name: str,
+           spread: pd.DataFrame | None = None):
     """PCA biplot (Gabriel, 1971): brands as points, attributes as arrows from the origin.
 
     Loadings are correlations (at most 1 in length); they are scaled by one
     common factor so the arrows span the brands, which keeps their directions
-    and relative lengths (the usual way to draw a biplot).
+    and relative lengths (the usual way to draw a biplot). With ``spread``
+    (the ``brand_map_bootstrap`` table) each brand gets its 95 % bootstrap
+    ellipse (photos or posters resampled, replicate maps aligned onto this one).
     """
     from bokeh.models import Arrow, ColumnDataSource, HoverTool, LabelSet, VeeHead
     from bokeh.plotting import figure
@@ -319,6 +365,9 @@ def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: 
             p.scatter(vec[:, 0] * scale * 1.35, vec[:, 1] * scale * 1.35, size=1, alpha=0)  # room for the labels
             p.add_layout(LabelSet(x="x1", y="y1", text="attribute", source=arrows, text_color=MUTED,
                                   text_font_size="11px", text_font_style="italic", x_offset=4, y_offset=2))
+    if spread is not None and len(spread) and "source" in spread:
+        _ellipses(p, pts.rename(columns={"pc1": "_x", "pc2": "_y"}), spread[spread["source"] == source_name],
+                  "_x", "_y", "", SOURCE_COLOURS.get(source_name, INK))
     r = p.scatter("x", "y", source=brand_src, size=11, fill_color=SOURCE_COLOURS.get(source_name, INK),
                   line_color="#ffffff")
     p.add_layout(LabelSet(x="x", y="y", text="brand", source=brand_src, text_color=INK, text_font_size="12px",
@@ -330,8 +379,8 @@ def biplot(brand_map: pd.DataFrame, loadings: pd.DataFrame | None, source_name: 
     return p
 
 
-def displacement_plot(displacement: pd.DataFrame, name: str):
-    """Consumer -> owned arrows per brand on the aligned brand map."""
+def displacement_plot(displacement: pd.DataFrame, name: str, spread: pd.DataFrame | None = None):
+    """Consumer -> owned arrows per brand on the aligned brand map, with 95 % bootstrap ellipses."""
     from bokeh.models import Arrow, ColumnDataSource, HoverTool, LabelSet, NormalHead
     from bokeh.plotting import figure
 
@@ -343,9 +392,19 @@ def displacement_plot(displacement: pd.DataFrame, name: str):
         cx=d["consumer_x"].astype(float), cy=d["consumer_y"].astype(float), ox=d["owned_x"].astype(float),
         oy=d["owned_y"].astype(float), brand=d["brand"].astype(str),
         dist=[f"{v:.2f}" for v in d.get("displacement", pd.Series(np.nan, index=d.index)).astype(float)],
+        dist_range=[("–" if not (np.isfinite(lo) and np.isfinite(hi)) else f"{lo:.2f} to {hi:.2f}")
+                    for lo, hi in zip(d.get("displacement_low", pd.Series(np.nan, index=d.index)).astype(float),
+                                      d.get("displacement_high", pd.Series(np.nan, index=d.index)).astype(float))],
+        most=[("–" if not np.isfinite(v) else f"{100 * v:.0f} %")
+              for v in d.get("moves_most_share", pd.Series(np.nan, index=d.index)).astype(float)],
     ))
     p = figure(name=name, height=380, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset",
                title="consumer → owned position (aligned onto the consumer map)")
+    if spread is not None and len(spread) and "source" in spread:
+        _ellipses(p, d, spread[spread["source"] == "consumer"], "consumer_x", "consumer_y", "aligned_", CONSUMER,
+                  "95 % bootstrap ellipse")
+        _ellipses(p, d, spread[spread["source"] == "owned"], "owned_x", "owned_y", "aligned_", OWNED,
+                  "95 % bootstrap ellipse")
     p.add_layout(Arrow(end=NormalHead(size=9, fill_color=OWNED, line_color=OWNED), source=src, x_start="cx",
                        y_start="cy", x_end="ox", y_end="oy", line_color=MUTED, line_width=1.5))
     c = p.scatter("cx", "cy", source=src, size=11, fill_color=CONSUMER, line_color="#ffffff", legend_label="consumer photos")
@@ -353,7 +412,9 @@ def displacement_plot(displacement: pd.DataFrame, name: str):
                   legend_label="owned photos")
     p.add_layout(LabelSet(x="cx", y="cy", text="brand", source=src, text_color=INK, text_font_size="12px",
                           x_offset=7, y_offset=-6))
-    p.add_tools(HoverTool(renderers=[c, o], tooltips=[("brand", "@brand"), ("displacement", "@dist")]))
+    p.add_tools(HoverTool(renderers=[c, o], tooltips=[("brand", "@brand"), ("displacement", "@dist"),
+                                                       ("95 % bootstrap range", "@dist_range"),
+                                                       ("moves most in", "@most of replicates")]))
     _style(p)
     p.x_range.range_padding = 0.4
     p.y_range.range_padding = 0.15

@@ -1,7 +1,7 @@
 """Assemble the report page: section data, bokeh figures, embedded data, HTML.
 
 The page is one file. Bokeh's JavaScript is inlined (``bokeh.resources.INLINE``),
-thumbnails are base64 JPEGs inside one JSON block, and every table offered for
+thumbnails are base64 WebP images inside one JSON block, and every table offered for
 download is embedded as JSON too, so opening the file makes no request of any
 kind.
 
@@ -26,8 +26,13 @@ import numpy as np
 import pandas as pd
 
 from explore.report import colours, figures
+from explore.report.advice import advice_lines
 from explore.report.data import OutputFolder
-from explore.report.thumbnails import ThumbnailChoice, choose_thumbnail_ids, thumbnails_for
+from explore.report.findings import findings_basis, findings_table, study_fdr
+from explore.report.tables import cell as table_cell
+from explore.report.tables import label as column_label
+from explore.report.tables import readable
+from explore.report.thumbnails import MIME, ThumbnailChoice, choose_thumbnail_ids, thumbnails_for
 
 #: Per-image tables: too large to embed as they are; the page offers the plotted
 #: images (ids, brand, source, context, map position, attribute probabilities) instead.
@@ -36,6 +41,8 @@ PER_IMAGE_TABLES = ("images", "image_attributes", "image_contexts")
 MAX_HTML_ROWS = 300
 #: Most thumbnails the gallery under the map draws at once.
 GALLERY_LIMIT = 240
+#: Longest side of the larger copies shown in the photo viewer (context exemplars only, so size stays bounded).
+LARGE_PX = 360
 
 
 # --------------------------------------------------------------------------
@@ -131,12 +138,21 @@ def fmt_number(v, digits: int = 3) -> str:
     return str(v)
 
 
+def fmt_p(v) -> str:
+    """A p- or q-value as text: "< 0.001" for tiny values (never "0"), else 3 decimals; "–" when missing."""
+    from explore.compare import format_p
+
+    return format_p(v)
+
+
+def _is_p_column(name: str) -> bool:
+    name = str(name)
+    return name in ("p_value", "q_value") or name.endswith(("_p", "_q"))
+
+
 def html_table(table: pd.DataFrame, columns: list[str] | None = None, limit: int = MAX_HTML_ROWS) -> dict:
-    """Rows of formatted cells for the template (escaped there), at most ``limit`` rows."""
-    cols = [c for c in (columns or list(table.columns)) if c in table.columns]
-    rows = [[fmt_number(v) for v in row] for row in table[cols].head(limit).itertuples(index=False, name=None)]
-    numeric = [pd.api.types.is_numeric_dtype(table[c]) and not pd.api.types.is_bool_dtype(table[c]) for c in cols]
-    return {"columns": cols, "rows": rows, "numeric": numeric, "total": len(table), "shown": len(rows)}
+    """Rows of readable cells (human headers, units, rounding) for the template, at most ``limit`` rows."""
+    return readable(table, columns, limit)
 
 
 def encoder_quality(encoder_id: str) -> dict:
@@ -318,12 +334,16 @@ def build_page(
     # ---- thumbnails
     exemplar_ids = [i for c in context_list for i in c["exemplars"]]
     usable_ids = usable["image_id"].tolist() if "image_id" in usable else []
-    choice = choose_thumbnail_ids(usable_ids, exemplar_ids, max_thumbnails, seed)
+    strata = None
+    if usable_ids and {"brand", "source"} <= set(usable.columns):
+        ctx_of = points.set_index("image_id")["context_id"].to_dict() if "context_id" in points else {}
+        strata = [(b, s_, ctx_of.get(i, -2)) for i, b, s_ in zip(usable_ids, usable["brand"], usable["source"])]
+    choice = choose_thumbnail_ids(usable_ids, exemplar_ids, max_thumbnails, seed, strata)
     thumbs: dict[str, str] = {}
     face_counts: dict[str, int] = {}
     if choice.ids and "path" in usable:
         suffix = "_faces_blurred" if blur_faces else ""
-        cache_file = cache_dir / f"thumbnails_{thumbnail_px}{suffix}.parquet" if cache_dir else None
+        cache_file = cache_dir / f"thumbnails_{thumbnail_px}{suffix}_webp.parquet" if cache_dir else None
         thumbs = thumbnails_for(
             usable, choice.ids, thumbnail_px, cache_file, blur_faces=blur_faces, face_counts=face_counts
         )
@@ -333,6 +353,14 @@ def build_page(
                 f"{unreadable:,} image file(s) could not be read again for thumbnails (moved or changed since the run); "
                 "they appear on the map without a picture."
             )
+
+    # Larger copies for the photo viewer: context exemplars only (a few per context).
+    large: dict[str, str] = {}
+    large_ids = [i for i in dict.fromkeys(exemplar_ids) if i in thumbs]
+    if large_ids and "path" in usable:
+        large_suffix = "_faces_blurred" if blur_faces else ""
+        large_cache = cache_dir / f"thumbnails_{LARGE_PX}{large_suffix}_webp.parquet" if cache_dir else None
+        large = thumbnails_for(usable, large_ids, LARGE_PX, large_cache, blur_faces=blur_faces)
 
     # ---- per-point payload (columnar: compact and fast to read in the page)
     brand_ix = {b: i for i, b in enumerate(brands)}
@@ -378,7 +406,8 @@ def build_page(
         order = [(c["id"], c["name"]) for c in context_list] or list(
             bc_all.drop_duplicates("context_id").sort_values("context_id")[["context_id", "context"]].itertuples(index=False, name=None)
         )
-        add(figures.context_heatmap(bc_all, [b for b in brands if b in set(bc_all["brand"])] or sorted(set(bc_all["brand"])), order))
+        add(figures.context_heatmap(bc_all, [b for b in brands if b in set(bc_all["brand"])] or sorted(set(bc_all["brand"])), order,
+                                    fdr=study_fdr(out.tables)))
 
     attr_sections = []
     gap_family = ""
@@ -411,6 +440,7 @@ def build_page(
             attr_sections.append({
                 "validation": _attribute_validation(out, attr, shares),
                 "name": attr,
+                "anchor": f"attr-{k}",
                 "chart": name if chart is not None else None,
                 "positive": _split_prompts(d.get("positive_descriptions", d.get("positive_prompts", ""))),
                 "negative": _split_prompts(d.get("negative_descriptions", d.get("negative_prompts", ""))),
@@ -427,14 +457,16 @@ def build_page(
     if out.has("brand_map", "source", "brand", "pc1", "pc2"):
         bm = out.get("brand_map")
         loads = out.get("brand_map_loadings") if out.has("brand_map_loadings", "source", "attribute", "loading_1", "loading_2") else None
+        spread = out.get("brand_map_bootstrap") if out.has("brand_map_bootstrap", "source", "brand") else None
         for k, src in enumerate(s for s in ("consumer", "owned", "survey") if s in set(bm["source"])):
             name = f"biplot_{k}"
-            fig = figures.biplot(bm, loads, src, name)
+            fig = figures.biplot(bm, loads, src, name, spread)
             add(fig)
             if fig is not None:
                 comparison_plots.append({"name": name, "kind": "biplot", "source": src})
     if out.has("brand_displacement", "brand", "consumer_x", "consumer_y", "owned_x", "owned_y"):
-        fig = figures.displacement_plot(out.get("brand_displacement"), "displacement_plot")
+        spread = out.get("brand_map_bootstrap") if out.has("brand_map_bootstrap", "source", "brand") else None
+        fig = figures.displacement_plot(out.get("brand_displacement"), "displacement_plot", spread)
         add(fig)
     if out.has("brand_vector_map", "brand", "source", "x", "y"):
         add(figures.vector_map_plot(out.get("brand_vector_map"), "vector_map_plot"))
@@ -444,16 +476,8 @@ def build_page(
     for name, table in out.tables.items():
         if name not in PER_IMAGE_TABLES:
             payload_tables[name] = table_json(table)
-    photo_table = points.drop(columns=[c for c in ("membership",) if c in points]).copy()
-    if "context_id" in photo_table:
-        photo_table.insert(
-            photo_table.columns.get_loc("context_id") + 1, "context",
-            [context_by_id[c]["name"] if c in context_by_id else "unassigned" for c in photo_table["context_id"]],
-        )
-    if prob_matrix is not None:
-        for j, a in enumerate(attributes):
-            photo_table[f"p_{a}"] = prob_matrix[:, j]
-    payload_tables["photos"] = table_json(photo_table)
+    # The "photos" CSV (one row per plotted image) is built in the page from the point payload and
+    # the map's data source, so the per-image data is embedded once, not twice.
 
     brand_view = _brand_view_data(out, brands, bc, points, thumbs)
     brand_maps = _brand_map_points(out)
@@ -477,10 +501,15 @@ def build_page(
         "brandMaps": brand_maps,
         "tables": payload_tables,
         "galleryLimit": GALLERY_LIMIT,
+        "thumbMime": MIME,
     }
 
     overview = _overview(run, out, usable, images_all, choice, thumbs, notes)
     overview["faces"] = faces_sentence(blur_faces, face_counts, len(thumbs))
+    findings = out.get("findings")
+    if findings is None:
+        findings = findings_table(out.tables)
+    findings_section = _findings_section(out, findings, brands, brand_category, [a["name"] for a in attr_sections])
     contexts_section = _contexts_section(out, context_list, bc_all, brands)
 
     from jinja2 import Environment, PackageLoader, select_autoescape
@@ -501,6 +530,7 @@ def build_page(
     variables = dict(
         study=run.get("study") or out.folder.name,
         overview=overview,
+        findings=findings_section,
         brands=brands,
         categories=categories,
         sources=sources,
@@ -514,6 +544,8 @@ def build_page(
         gap_family=gap_family,
         attr_missing=out.missing("attribute_shares", "level", "brand", "source", "attribute", "yes_rate", "yes_rate_low", "yes_rate_high"),
         agreement=_agreement(out),
+        context_stability=_stability(out),
+        map_uncertainty=_map_uncertainty(out),
         comparison_plots=comparison_plots,
         compare_missing=out.missing("brand_map", "source", "brand", "pc1", "pc2"),
         displacement=_displacement_table(out),
@@ -523,6 +555,7 @@ def build_page(
         report_js=js,
         data_json=script_json(payload),
         thumbs_json=script_json(thumbs),
+        large_json=script_json(large),
         built_at=datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
     )
     if not models:
@@ -703,7 +736,38 @@ def _overview(run: dict, out: OutputFolder, usable: pd.DataFrame, images_all: pd
         "thumbnails_sampled": choice.sampled,
         "n_thumbs": len(thumbs),
         "tables": sorted(n for n in out.tables if n not in PER_IMAGE_TABLES),
-        "folder": str(out.folder),
+        "folder": str(run.get("output") or out.folder),  # a run builds its report in a staging folder
+        "run_id": str(run.get("run_id") or ""),
+    }
+
+
+def _findings_section(out: OutputFolder, findings: pd.DataFrame, brands: list[str], brand_category: dict,
+                      attribute_names: list[str]) -> dict:
+    """Per brand: its findings with their evidence links, then what they rest on and the advice."""
+    anchors = {a: f"attr-{k}" for k, a in enumerate(attribute_names)}
+    blocks = []
+    for brand in brands:
+        rows = findings[findings["brand"].astype(str) == brand].sort_values("rank") if len(findings) else findings
+        items = []
+        for rec in rows.to_dict("records"):
+            evidence = str(rec.get("evidence") or "")
+            item = {"rank": int(rec["rank"]), "kind": str(rec["kind"]), "sentence": str(rec["sentence"]),
+                    "value": _clean(rec.get("value")), "test": str(rec.get("test") or ""),
+                    "estimand": str(rec.get("estimand") or ""), "context_id": None, "source": "all", "anchor": ""}
+            if evidence.startswith("photos:"):
+                item["context_id"] = _clean(rec.get("context_id"))
+                src = str(rec.get("source") or "all")
+                item["source"] = src if src in ("consumer", "owned") else "all"
+                item["anchor"] = f"context-{int(rec['context_id'])}"
+            elif evidence.startswith("chart:"):
+                item["anchor"] = anchors.get(str(rec.get("attribute")), "attributes")
+            items.append(item)
+        blocks.append({"brand": brand, "category": str(brand_category.get(brand, "")), "findings": items})
+    return {
+        "blocks": blocks,
+        "basis": findings_basis(out.tables),
+        "advice": advice_lines(out.tables, out.run, findings),
+        "total": len(findings),
     }
 
 
@@ -724,10 +788,14 @@ def _contexts_section(out: OutputFolder, context_list: list[dict], bc_all, brand
                 })
         cards.append({**c, "indices": indices})
     lists = []
+    tested = _tests_sentences(out)
     for key, title in (("signature_contexts", "Signature contexts"), ("unexpected_contexts", "Unexpected contexts")):
         table = out.get(key)
         if table is None or not len(table):
-            lists.append({"key": key, "title": title, "missing": out.missing(key), "rows": []})
+            missing = out.missing(key)
+            if table is not None and not len(table):
+                missing = tested[key]
+            lists.append({"key": key, "title": title, "missing": missing, "rows": []})
             continue
         preferred = ["brand", "source", "context", "count", "brand_n", "share", "category_share",
                      "index", "q_value", "reason"]
@@ -739,18 +807,51 @@ def _contexts_section(out: OutputFolder, context_list: list[dict], bc_all, brand
         t = table.sort_values(sort_cols, ascending=[True, False][: len(sort_cols)]) if sort_cols else table
         for rec in t.head(MAX_HTML_ROWS).to_dict("records"):
             rows.append({
-                "cells": [_fmt_cell(col, rec.get(col)) for col in cols],
+                "cells": [table_cell(col, rec.get(col), rec.get("brand_n")) for col in cols],
                 "brand": str(rec.get("brand", "")),
                 "context_id": int(rec["context_id"]) if "context_id" in rec and pd.notna(rec["context_id"]) else None,
                 "context": str(rec.get("context", "")),
                 "source": str(rec.get("source", "all") or "all"),
             })
-        lists.append({"key": key, "title": title, "missing": "", "columns": cols, "rows": rows, "total": len(table)})
+        lists.append({"key": key, "title": title, "missing": "", "columns": [column_label(c) for c in cols],
+                      "rows": rows, "total": len(table)})
+    gaps = out.get("source_context_gaps")
     return {
         "cards": cards,
         "lists": lists,
         "missing": "" if context_list else out.missing("contexts", "context_id", "context"),
-        "source_gaps": html_table(out.get("source_context_gaps")) if out.has("source_context_gaps") else None,
+        "source_gaps": html_table(gaps) if out.has("source_context_gaps") else None,
+        "source_gaps_empty": tested["source_context_gaps"] if gaps is not None and not len(gaps) else "",
+    }
+
+
+def _tests_sentences(out: OutputFolder) -> dict[str, str]:
+    """What was tested, for tables that came out empty (a sentence instead of "table is empty")."""
+    ctx = out.get("contexts")
+
+    def setting(name, default):
+        if ctx is not None and f"setting_{name}" in ctx and len(ctx):
+            v = ctx[f"setting_{name}"].iloc[0]
+            return default if pd.isna(v) else v
+        return default
+
+    fdr, min_index, min_count = setting("fdr", 0.05), setting("min_index", 120), setting("min_count", 5)
+    rare, ratio = setting("rare_category_share", 0.05), setting("dominance_ratio", 2)
+    return {
+        "signature_contexts": (
+            f"No brand shows up in any context clearly more than the rest of its category. Tested: every brand and "
+            f"context with a two-sided Fisher exact test against the rest of the category, Benjamini-Hochberg q at most "
+            f"{float(fdr):g}, index at least {float(min_index):.0f} and at least {int(min_count)} photos"
+        ),
+        "unexpected_contexts": (
+            f"None of the signature contexts is unusual for its category. Tested: signature contexts where the "
+            f"category has under {100 * float(rare):.0f} % of its photos, or another category is at least "
+            f"{float(ratio):g} times as present"
+        ),
+        "source_context_gaps": (
+            f"No context differs between a brand's consumer and owned photos. Tested: every brand with both sources, "
+            f"two-sided Fisher exact test, Benjamini-Hochberg q at most {float(fdr):g}, at least {int(min_count)} photos"
+        ),
     }
 
 
@@ -771,16 +872,33 @@ def _fmt_cell(column: str, value) -> str:
 
 
 def _agreement(out: OutputFolder):
-    """The agreement table in reading form: one cell per statistic with its p-value."""
+    """The agreement table in reading form: each statistic with its 95 % interval, exact p and BH q.
+
+    Rows with fewer than 5 brands carry counts only (the compare stage leaves
+    their statistics empty); "significant" is Kendall's tau-b after
+    Benjamini-Hochberg over the family named above the table.
+    """
     if not out.has("agreement"):
         return {"missing": out.missing("agreement")}
     t = out.get("agreement")
 
-    def with_p(value_col: str, p_col: str) -> list[str]:
-        if value_col not in t:
-            return ["–"] * len(t)
-        p = t[p_col] if p_col in t else pd.Series(np.nan, index=t.index)
-        return [fmt_number(v) + ("" if fmt_number(q) == "–" else f" (p {fmt_number(q)})") for v, q in zip(t[value_col], p)]
+    def col(name):
+        return t[name] if name in t else pd.Series(np.nan, index=t.index)
+
+    def with_p(stat: str, value_col: str) -> list[str]:
+        cells = []
+        for v, lo, hi, p, q in zip(col(value_col), col(f"{stat}_low"), col(f"{stat}_high"), col(f"{stat}_p"),
+                                   col(f"{stat}_q")):
+            if fmt_number(v) == "–":
+                cells.append("–")
+                continue
+            text = fmt_number(v)
+            if fmt_number(lo) != "–":
+                text += f" [{fmt_number(lo)}, {fmt_number(hi)}]"
+            if fmt_p(p) != "–":
+                text += f" (p {fmt_p(p)}" + (f", q {fmt_p(q)}" if fmt_p(q) != "–" else "") + ")"
+            cells.append(text)
+        return cells
 
     def named(v) -> str:
         return str(v).replace("_", " ")
@@ -791,19 +909,74 @@ def _agreement(out: OutputFolder):
         "compared": [f"{named(a)} vs {named(b)}" for a, b in zip(t.get("metric_a", ""), t.get("metric_b", ""))],
         "brands": t.get("n_brands", np.nan),
         "pairs ranked alike": [("–" if fmt_number(v) == "–" else f"{100 * float(v):.0f} %") for v in t.get("concordant_share", np.nan)],
-        "Kendall tau": with_p("kendall_tau", "kendall_p"),
-        "Spearman rho": with_p("spearman_rho", "spearman_p"),
-        "Pearson r": with_p("pearson_r", "pearson_p"),
+        "Kendall tau": with_p("kendall", "kendall_tau"),
+        "Spearman rho": with_p("spearman", "spearman_rho"),
+        "Pearson r": with_p("pearson", "pearson_r"),
+        "significant (BH)": [bool(v) if pd.notna(v) else False for v in col("significant")],
         "note": t.get("note", "").fillna("") if "note" in t else "",
     })
-    return {"missing": "", "table": html_table(view)}
+    families = sorted({str(f) for f in t.get("family", pd.Series(dtype=str)).fillna("") if str(f)})
+    methods = sorted({str(f) for f in t.get("p_method", pd.Series(dtype=str)).fillna("") if str(f)})
+    return {"missing": "", "table": html_table(view), "families": families, "methods": methods,
+            "significant": int(sum(bool(v) for v in col("significant") if pd.notna(v))),
+            "tested": int(col("kendall_p").notna().sum())}
+
+
+def _map_uncertainty(out: OutputFolder) -> dict:
+    """Caption texts for the brand maps: bootstrap ellipses, PROTEST per alignment, the "moves most" rule."""
+    from explore.compare import MOVES_MOST_SHARE
+
+    texts = {"ellipses": "", "protest": "", "moves": ""}
+    if out.has("brand_map_bootstrap", "replicates", "resampled") and len(out.get("brand_map_bootstrap")):
+        sp = out.get("brand_map_bootstrap")
+        what = ("posters resampled within brand × source" if (sp["resampled"] == "posters").any()
+                else "photos resampled within brand × source; no poster ids, so photos are assumed independent")
+        texts["ellipses"] = (f"Dashed ellipses: the 95 % region of each brand's position over "
+                             f"{int(sp['replicates'].iloc[0])} bootstrap replicates ({what}; each replicate map "
+                             "aligned onto the one shown). Overlapping ellipses do not by themselves mean two "
+                             "brands are alike or different.")
+    if out.has("brand_map", "source", "protest_p"):
+        bm = out.get("brand_map")
+        parts = []
+        for src in ("owned", "survey"):
+            rows = bm[(bm["source"] == src) & bm["protest_p"].notna()]
+            if len(rows):
+                r = rows.iloc[0]
+                parts.append(f"{src} vs consumer map: disparity {fmt_number(r['disparity'], 2)}, "
+                             f"PROTEST p {fmt_p(r['protest_p'])} ({r.get('protest_method', '')})")
+        if parts:
+            texts["protest"] = ("PROTEST (Jackson 1995) asks whether two maps agree more than maps of shuffled brand "
+                                "labels would: " + "; ".join(parts) + ".")
+    if out.has("brand_displacement", "moves_most_share"):
+        d = out.get("brand_displacement").dropna(subset=["moves_most_share"])
+        if len(d):
+            top = d.sort_values("moves_most_share", ascending=False).iloc[0]
+            rule = f"a brand is said to move most only when it does so in at least {100 * MOVES_MOST_SHARE:.0f} % of the replicates"
+            if top["moves_most_share"] >= MOVES_MOST_SHARE:
+                texts["moves"] = f"{top['brand']} moves most in {100 * top['moves_most_share']:.0f} % of the replicates ({rule})."
+            else:
+                texts["moves"] = (f"No brand moves most reliably: the most frequent, {top['brand']}, does in "
+                                  f"{100 * top['moves_most_share']:.0f} % of the replicates ({rule}).")
+    return texts
+
+
+def _stability(out: OutputFolder) -> str:
+    """One sentence on how the contexts change with the seed (context_stability)."""
+    if not out.has("context_stability", "ari", "refit_seed"):
+        return ""
+    r = out.get("context_stability").iloc[0]
+    ari = fmt_number(r.get("ari"), 2)
+    return (f"Stability: a refit with another seed ({r.get('method', '')}) found {fmt_number(r.get('refit_contexts'))} "
+            f"contexts against {fmt_number(r.get('main_contexts'))}; on the {fmt_number(r.get('both_assigned'))} photos "
+            f"assigned in both, the adjusted Rand index is {ari} (1 = the same grouping, 0 = chance). "
+            "Small contexts and their names may change between runs.")
 
 
 def _displacement_table(out: OutputFolder):
     if not out.has("brand_displacement", "brand"):
         return None
-    cols = ["brand", "category", "displacement", "survey_displacement", "owned_rank_gap", "survey_rank_gap",
-            "vector_distance", "vector_displacement"]
+    cols = ["brand", "category", "displacement", "displacement_low", "displacement_high", "moves_most_share",
+            "survey_displacement", "owned_rank_gap", "survey_rank_gap", "vector_distance", "vector_displacement"]
     return html_table(out.get("brand_displacement"), cols)
 
 
@@ -821,7 +994,13 @@ def _brand_view_data(out: OutputFolder, brands: list[str], bc, points: pd.DataFr
             part = bc[bc["source"] == src] if "source" in bc else (bc if src == "all" else bc.iloc[0:0])
             for rec in part.to_dict("records"):
                 b = rec["brand"]
-                if b not in view or int(rec["context_id"]) < 0:  # "unassigned" is not a context to index
+                if b not in view:
+                    continue
+                if int(rec["context_id"]) < 0:  # "unassigned": its own row, no index (it is not a context)
+                    view[b].setdefault("unassigned", []).append({
+                        "source": src, "count": _clean(rec.get("count")), "n": _clean(rec.get("brand_n")),
+                        "share": _clean(rec.get("share")),
+                    })
                     continue
                 view[b]["contexts"].append({
                     "source": src,

@@ -6,6 +6,7 @@
 
   var DATA = JSON.parse(document.getElementById("explore-data").textContent);
   var THUMBS = JSON.parse(document.getElementById("explore-thumbs").textContent);
+  var LARGE = JSON.parse(document.getElementById("explore-large").textContent);
   var P = DATA.points;
   var N = P.id.length;
   var idIndex = {};
@@ -27,7 +28,7 @@
   }
   function thumbSrc(id) {
     var t = THUMBS[id];
-    return t ? "data:image/jpeg;base64," + t : null;
+    return t ? "data:" + DATA.thumbMime + ";base64," + t : null;
   }
   function baseName(path) {
     var s = String(path || "");
@@ -77,8 +78,9 @@
         if (!id) return;
         var src = thumbSrc(id);
         if (!src) return;
-        var img = el("img");
+        var img = el("img", "zoomable");
         img.src = src;
+        img.setAttribute("data-id", id);
         var k = idIndex[id];
         img.alt = k !== undefined ? baseName(P.file[k]) : id;
         img.title = img.alt;
@@ -119,8 +121,9 @@
       var src = P.t[k] ? thumbSrc(P.id[k]) : null;
       if (!src) continue;
       var fig = el("figure");
-      var img = el("img");
+      var img = el("img", "zoomable");
       img.src = src;
+      img.setAttribute("data-id", P.id[k]);
       img.alt = baseName(P.file[k]);
       img.title = P.file[k] + "\n" + (DATA.brands[P.b[k]] || "") + " · " + (DATA.sources[P.s[k]] || "") + " · " + contextName(P.c[k]);
       fig.appendChild(img);
@@ -323,7 +326,56 @@
   function closePhotos() { dialog.hidden = true; }
   document.getElementById("photo-dialog-close").addEventListener("click", closePhotos);
   dialog.addEventListener("click", function (ev) { if (ev.target === dialog) closePhotos(); });
-  document.addEventListener("keydown", function (ev) { if (ev.key === "Escape" && !dialog.hidden) closePhotos(); });
+  document.addEventListener("keydown", function (ev) {
+    if (ev.key !== "Escape") return;
+    if (!lightbox.hidden) { closeLightbox(); return; }
+    if (!dialog.hidden) closePhotos();
+  });
+
+  // ------------------------------------------------------------------ photo viewer (click a thumbnail)
+  var lightbox = document.getElementById("lightbox");
+  var lightboxReturn = null;
+  function openLightbox(id) {
+    var k = idIndex[id];
+    var large = LARGE[id];
+    var src = large ? "data:" + DATA.thumbMime + ";base64," + large : thumbSrc(id);
+    if (!src) return;
+    var img = document.getElementById("lightbox-img");
+    img.src = src;
+    img.alt = k !== undefined ? baseName(P.file[k]) : id;
+    img.className = large ? "large" : "small";
+    document.getElementById("lightbox-title").textContent = k !== undefined ? baseName(P.file[k]) : id;
+    var facts = document.getElementById("lightbox-facts");
+    facts.textContent = "";
+    function fact(name, value) { facts.appendChild(el("dt", null, name)); facts.appendChild(el("dd", null, value)); }
+    if (k !== undefined) {
+      fact("brand", DATA.brands[P.b[k]] !== undefined ? DATA.brands[P.b[k]] : "–");
+      fact("category", DATA.categories[P.k[k]] !== undefined ? DATA.categories[P.k[k]] : "–");
+      fact("source", DATA.sources[P.s[k]] !== undefined ? DATA.sources[P.s[k]] + " photo" : "–");
+      fact("context", contextName(P.c[k]));
+      DATA.attributes.forEach(function (a, j) {
+        var v = P.p[j] ? P.p[j][k] : null;
+        if (v !== null && v !== undefined) fact(a, "probability " + v.toFixed(2));
+      });
+      fact("file", P.file[k]);
+    }
+    document.getElementById("lightbox-size").textContent = large
+      ? "A larger copy is embedded for context exemplars."
+      : "Only a small thumbnail of this photo is in the file; the original is in the study's image folder.";
+    lightboxReturn = document.activeElement;
+    lightbox.hidden = false;
+    document.getElementById("lightbox-close").focus();
+  }
+  function closeLightbox() {
+    lightbox.hidden = true;
+    if (lightboxReturn && lightboxReturn.focus) lightboxReturn.focus();
+  }
+  document.getElementById("lightbox-close").addEventListener("click", closeLightbox);
+  lightbox.addEventListener("click", function (ev) { if (ev.target === lightbox) closeLightbox(); });
+  document.addEventListener("click", function (ev) {
+    var t = ev.target;
+    if (t && t.tagName === "IMG" && t.classList.contains("zoomable") && t.getAttribute("data-id")) openLightbox(t.getAttribute("data-id"));
+  });
   document.querySelectorAll(".photo-row").forEach(function (row) {
     function go() {
       var c = row.getAttribute("data-context");
@@ -331,6 +383,11 @@
     }
     row.addEventListener("click", go);
     row.addEventListener("keydown", function (ev) { if (ev.key === "Enter") go(); });
+  });
+  document.querySelectorAll(".finding-photos").forEach(function (btn) {
+    btn.addEventListener("click", function () {
+      openPhotos(btn.getAttribute("data-brand"), +btn.getAttribute("data-context"), btn.getAttribute("data-source"));
+    });
   });
   document.querySelectorAll(".show-photos").forEach(function (btn) {
     btn.addEventListener("click", function () { openPhotos(null, +btn.getAttribute("data-context")); });
@@ -429,6 +486,25 @@
       row.appendChild(indexChip(c.index));
       box.appendChild(row);
     });
+    // Photos in no context: a row of their own (no index), with advice when they are many.
+    var un = (view.unassigned || []).filter(function (u) { return u.source === "all"; })[0];
+    if (un && un.count) {
+      var urow = el("div", "bv-row bv-unassigned");
+      urow.appendChild(el("div", "bv-name", "unassigned (in no context)"));
+      var ubox = el("div");
+      ubox.appendChild(el("div", "bv-share", pct(un.share) + " · " + photos(un.count)));
+      var usrc = (view.unassigned || []).filter(function (u) { return u.source !== "all"; })
+        .map(function (u) { return u.source + "\u00a0" + (u.share === null ? "–" : Math.round(100 * u.share) + "\u00a0%"); });
+      if (usrc.length) ubox.appendChild(el("div", "bv-share", usrc.join(" · ")));
+      urow.appendChild(ubox);
+      urow.appendChild(el("div"));
+      box.appendChild(urow);
+      if (un.share !== null && un.share > 0.3) {
+        box.appendChild(el("p", "fine bv-advice", "More than 30 % of this brand's photos fit no context, so the " +
+          "shares above describe only part of its photos. More photos per brand, or a smaller minimum context " +
+          "size (contexts.min_cluster_size), usually assign more."));
+      }
+    }
     fillThumbs(box);
 
     ["signature", "unexpected"].forEach(function (key) {
@@ -520,12 +596,31 @@
     table.rows.forEach(function (r) { lines.push(r.map(csvCell).join(",")); });
     return lines.join("\r\n") + "\r\n";
   }
-  window.ExploreReport.toCsv = function (name) { return DATA.tables[name] ? toCsv(DATA.tables[name]) : null; };
+  // The plotted images: built here from the point payload (and the map's positions) when asked for.
+  function photosTable() {
+    var columns = ["image_id", "relpath", "brand", "category", "source", "context_id", "context", "map_x", "map_y"]
+      .concat(DATA.attributes.map(function (a) { return "p_" + a; }));
+    var m = mapModels();
+    var xs = m ? m.source.data.x : null, ys = m ? m.source.data.y : null;
+    var rows = new Array(N);
+    for (var k = 0; k < N; k++) {
+      var r = [P.id[k], P.file[k], DATA.brands[P.b[k]], DATA.categories[P.k[k]], DATA.sources[P.s[k]], P.c[k], contextName(P.c[k]),
+        xs ? Number(xs[k].toPrecision(6)) : null, ys ? Number(ys[k].toPrecision(6)) : null];
+      for (var j = 0; j < DATA.attributes.length; j++) r.push(P.p[j] ? P.p[j][k] : null);
+      rows[k] = r;
+    }
+    return { columns: columns, rows: rows };
+  }
+  function tableNamed(name) {
+    if (name === "photos") return N ? photosTable() : null;
+    return DATA.tables[name] || null;
+  }
+  window.ExploreReport.toCsv = function (name) { var t = tableNamed(name); return t ? toCsv(t) : null; };
   document.querySelectorAll("button.csv").forEach(function (btn) {
     var name = btn.getAttribute("data-table");
-    if (!DATA.tables[name]) { btn.disabled = true; btn.title = "not in this run"; return; }
+    if (!(name === "photos" ? N : DATA.tables[name])) { btn.disabled = true; btn.title = "not in this run"; return; }
     btn.addEventListener("click", function () {
-      var blob = new Blob(["\ufeff" + toCsv(DATA.tables[name])], { type: "text/csv;charset=utf-8" });
+      var blob = new Blob(["\ufeff" + toCsv(tableNamed(name))], { type: "text/csv;charset=utf-8" });
       var a = document.createElement("a");
       a.href = URL.createObjectURL(blob);
       a.download = name + ".csv";
@@ -534,6 +629,74 @@
       setTimeout(function () { URL.revokeObjectURL(a.href); a.remove(); }, 1000);
     });
   });
+
+  // ------------------------------------------------------------------ charts as images (save, print)
+  function plotView(name) {
+    if (!window.Bokeh || !Bokeh.documents || !Bokeh.documents.length) return null;
+    var model = Bokeh.documents[0].get_model_by_name(name);
+    return model && Bokeh.index ? Bokeh.index.get_one(model) : null;
+  }
+  function chartLayer(name, type) {
+    var view = plotView(name);
+    return view ? view.export(type, type === "png") : null;
+  }
+  function chartPng(name) {
+    var layer = chartLayer(name, "png");
+    return layer ? layer.canvas.toDataURL("image/png") : null;
+  }
+  function chartFileName(name, ext) {
+    var study = (document.getElementById("study-name") || {}).textContent || "report";
+    return (study + "-" + name).replace(/[^A-Za-z0-9._-]+/g, "_").slice(0, 120) + "." + ext;
+  }
+  function saveBlob(blob, filename) {
+    var a = document.createElement("a");
+    a.href = URL.createObjectURL(blob);
+    a.download = filename;
+    document.body.appendChild(a);
+    a.click();
+    setTimeout(function () { URL.revokeObjectURL(a.href); a.remove(); }, 1000);
+  }
+  document.querySelectorAll("button.save-png, button.save-svg").forEach(function (btn) {
+    btn.addEventListener("click", function () {
+      var name = btn.getAttribute("data-chart");
+      var type = btn.classList.contains("save-svg") ? "svg" : "png";
+      var layer = chartLayer(name, type);
+      if (!layer) return;
+      layer.to_blob().then(function (blob) { saveBlob(blob, chartFileName(name, type)); });
+    });
+  });
+  // Printing: each chart is replaced by a picture of itself that scales to the paper (a live
+  // canvas keeps its screen width, and WebGL canvases may print blank).
+  function preparePrint() {
+    var made = 0;
+    document.querySelectorAll(".chart[data-chart]").forEach(function (box) {
+      var name = box.getAttribute("data-chart");
+      var view = plotView(name);
+      if (!view) return;
+      var url;
+      try { url = chartPng(name); } catch (e) { return; }
+      if (!url) return;
+      var img = box.querySelector("img.print-img");
+      if (!img) { img = el("img", "print-img"); img.alt = "chart " + name; box.appendChild(img); }
+      img.src = url;
+      img.style.width = Math.round(view.bbox ? view.bbox.width : 600) + "px";
+      made++;
+    });
+    return made;
+  }
+  window.ExploreReport.chartPng = chartPng;
+  window.ExploreReport.openLightbox = openLightbox;
+  window.ExploreReport.preparePrint = preparePrint;
+  // Chromium fires beforeprint for the print dialog, for --print-to-pdf and for DevTools' printToPDF
+  // (playwright's page.pdf), so the pictures are made only when printing, not on every load.
+  window.addEventListener("beforeprint", preparePrint);
+  (function whenIdle() {
+    if (window.Bokeh && Bokeh.documents && Bokeh.documents.length && Bokeh.documents[0].is_idle) {
+      document.body.setAttribute("data-print-ready", "1");
+    } else {
+      setTimeout(whenIdle, 100);
+    }
+  })();
 
   // ------------------------------------------------------------------ start
   fillThumbs(document);
