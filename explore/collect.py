@@ -146,6 +146,7 @@ def open_rgb(
     draft_size: int | None = None,
     max_pixels: int = MAX_PIXELS,
     expect_sha256: str | None = None,
+    data: bytes | None = None,
 ) -> Image.Image:
     """Decode one image file to an upright 8-bit RGB PIL image.
 
@@ -160,6 +161,9 @@ def open_rgb(
     max_pixels : images larger than this are refused (decompression bombs).
     expect_sha256 : when given, the file's bytes must still hash to this
         (so vectors are never stored under the hash of other content).
+    data : the file's bytes, when they were read elsewhere (a cluster worker
+        that cannot see ``path`` gets them from the driver); ``path`` is then
+        only named in messages.
 
     Returns
     -------
@@ -171,7 +175,10 @@ def open_rgb(
     ``too_large``, ``truncated``, ``corrupt``, or ``changed`` (content differs
     from ``expect_sha256``).
     """
-    data = _read_bytes(Path(path))
+    if data is None:
+        data = _read_bytes(Path(path))
+    elif not data:
+        raise ImageProblem("empty", "the file is empty (0 bytes)")
     if expect_sha256 is not None and hashlib.sha256(data).hexdigest() != expect_sha256:
         raise ImageProblem("changed", "the file's content changed since it was collected")
     image, _ = _decode(data, draft_size, max_pixels)
