@@ -353,10 +353,14 @@ def cmd_embed(args) -> int:
         staging = Staging(args.out, lock.run_id)
         try:
             folder = staging.create()
+            from explore.collect_index import INDEX_NAME
+
+            index = args.out / "cache" / INDEX_NAME  # unchanged files are not read again
             if source.suffix.lower() == ".csv":
-                images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet)
+                images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet,
+                                                index=index)
             else:
-                images = collect.collect_images(root=source, progress=not args.quiet)
+                images = collect.collect_images(root=source, progress=not args.quiet, index=index)
             say(collect.summarise(images))
             encoder, notice = load_encoder(
                 args.encoder or "auto",

@@ -605,6 +605,7 @@ def collect_images(
     max_per_poster: int = 0,
     seed: int = 0,
     exclude: tuple[Path, ...] = (),
+    index: str | Path | None = None,
 ) -> pd.DataFrame:
     """Find the images and build the images table (one row per file found).
 
@@ -627,6 +628,9 @@ def collect_images(
         brand x source (0: no cap); the rest get status ``over_poster_cap``.
     seed : seeds the choice of the photos kept under the cap.
     exclude : folders under the root that are not searched (a study's output folder).
+    index : a read index file (``collect_index.ReadIndex``): files whose
+        (path, size, mtime) match an earlier successful read are not opened
+        again; updated at the end. None: read every file.
 
     Returns
     -------
@@ -659,7 +663,7 @@ def collect_images(
         raise CollectError("collect needs an images root folder or a manifest CSV")
 
     todo = [e for e in entries if not e.status]
-    results = _read_all(todo, progress, max_pixels, workers)
+    results = _read_all(todo, progress, max_pixels, workers, index)
     hashes: dict[int, int] = {}
     rows = []
     extra_names: list[str] = []
@@ -722,19 +726,32 @@ def _read_one(entry: _Entry, max_pixels: int):
         return ImageProblem("corrupt", f"unexpected error while reading: {type(exc).__name__}: {exc}")
 
 
-def _read_all(entries: list[_Entry], progress: bool, max_pixels: int, workers: int | None) -> list:
+def _read_all(entries: list[_Entry], progress: bool, max_pixels: int, workers: int | None, index=None) -> list:
     from tqdm.auto import tqdm
+
+    from explore.collect_index import ReadIndex, file_key
 
     if not entries:
         return []
+    read_index = ReadIndex(index) if index is not None else None
+    results: list = [None] * len(entries)
+    keys: list = [None] * len(entries)
+    if read_index is not None:  # unchanged files (same size and mtime) are not opened again
+        for i, entry in enumerate(entries):
+            keys[i] = file_key(entry.path)  # taken before reading: a change during the read is seen next time
+            results[i] = read_index.get(entry.path, keys[i], max_pixels)
+    todo = [i for i, result in enumerate(results) if result is None]
     workers = workers or _cpu_count()
     with ThreadPoolExecutor(max_workers=workers) as pool, tqdm(
-        total=len(entries), desc="collect", unit="file", disable=not progress
+        total=len(todo), desc="collect", unit="file", disable=not progress or not todo
     ) as bar:
-        results = []
-        for result in pool.map(lambda e: _read_one(e, max_pixels), entries):
-            results.append(result)
+        for i, result in zip(todo, pool.map(lambda i: _read_one(entries[i], max_pixels), todo)):
+            results[i] = result
+            if read_index is not None:
+                read_index.put(entries[i].path, keys[i], result)
             bar.update(1)
+    if read_index is not None:
+        read_index.save()
     return results
 
 
@@ -836,7 +853,13 @@ def _popcount(x: np.ndarray) -> np.ndarray:
 
 
 def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
-    """The images table of a study: its ``[images]`` root/manifest and ``[brands]`` categories."""
+    """The images table of a study: its ``[images]`` root/manifest and ``[brands]`` categories.
+
+    Unchanged files are not read again: the read index lives in the study's
+    cache (``OUT/cache/collect_index.parquet``, see ``collect_index``).
+    """
+    from explore.collect_index import INDEX_NAME
+
     return collect_images(
         root=study.images.root,
         manifest=study.images.manifest,
@@ -846,6 +869,7 @@ def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
         max_per_poster=study.images.max_per_poster,
         seed=study.seed,
         exclude=(study.output,),
+        index=Path(study.output) / "cache" / INDEX_NAME,
     )
 
 
