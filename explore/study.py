@@ -110,9 +110,10 @@ class ContextSettings:
     cluster_selection: HDBSCAN cluster selection, "leaf" (default: finer,
         more homogeneous contexts) or "eom" (HDBSCAN's own default).
     cluster_dimensions: UMAP dimensions HDBSCAN clusters in (default 10).
-    fit_sample: above this many images UMAP is fitted on a seeded sample of
-        this size and every other image is placed from its nearest sampled
-        images (default 20000).
+    fit_sample: above this many images UMAP and HDBSCAN are fitted on a
+        seeded sample of this size; every other image is placed from its
+        nearest sampled images and given a context by HDBSCAN's
+        approximate_predict (default 20000).
     vocabulary, extra_phrases, replace_vocabulary: the phrases contexts are
         named from (default: explore/data/context_vocabulary.txt, extended by
         the file and the extra phrases; replaced when replace_vocabulary).
