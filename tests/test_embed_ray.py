@@ -207,3 +207,18 @@ def test_without_ray_the_option_says_how_to_install(monkeypatch, twelve, tmp_pat
     monkeypatch.setattr("builtins.__import__", no_ray)
     with pytest.raises(embed_ray.ClusterError, match=r'pip install "explore\[cluster\]"'):
         embed_ray.require_ray()
+
+
+def test_cluster_settings_in_the_study_file_are_checked(tmp_path):
+    from explore.study import StudyError, study_from_dict
+
+    base = {"images": {"root": str(tmp_path)}}
+    study = study_from_dict({**base, "cluster": {"address": "auto", "workers": 4}}, tmp_path / "s.toml")
+    assert (study.cluster.address, study.cluster.workers, study.cluster.transfer) == ("auto", 4, "auto")
+    assert study_from_dict(base, tmp_path / "s.toml").cluster.address == ""  # default: this machine
+    with pytest.raises(StudyError, match="cluster.transfer"):
+        study_from_dict({**base, "cluster": {"transfer": "ftp"}}, tmp_path / "s.toml")
+    with pytest.raises(StudyError, match="cluster.workers"):
+        study_from_dict({**base, "cluster": {"workers": -1}}, tmp_path / "s.toml")
+    with pytest.raises(StudyError, match="cluster.adress"):
+        study_from_dict({**base, "cluster": {"adress": "auto"}}, tmp_path / "s.toml")
