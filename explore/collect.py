@@ -763,17 +763,17 @@ def _cpu_count() -> int:
 
 
 def _flag_duplicates(table: pd.DataFrame) -> None:
-    first: dict[str, str] = {}
-    first_path: dict[str, str] = {}
-    for i in np.flatnonzero(table["status"].to_numpy() == "ok"):
-        sha = table.at[i, "sha256"]
-        if sha in first:
-            table.at[i, "status"] = "duplicate"
-            table.at[i, "duplicate_of"] = first[sha]
-            table.at[i, "reason"] = f"same content as {first_path[sha]} (kept once)"
-        else:
-            first[sha] = table.at[i, "image_id"]
-            first_path[sha] = table.at[i, "relpath"]
+    """Later usable rows with the content of an earlier one become ``duplicate`` (vectorised)."""
+    usable = table.loc[table["status"].to_numpy() == "ok", ["sha256", "image_id", "relpath"]]
+    later = usable["sha256"].duplicated(keep="first").to_numpy()
+    if not later.any():
+        return
+    first = usable[~later].set_index("sha256")
+    shas = usable["sha256"].to_numpy()[later]
+    rows = usable.index[later]
+    table.loc[rows, "status"] = "duplicate"
+    table.loc[rows, "duplicate_of"] = first.loc[shas, "image_id"].to_numpy()
+    table.loc[rows, "reason"] = [f"same content as {p} (kept once)" for p in first.loc[shas, "relpath"]]
 
 
 def _flag_near_duplicates(table: pd.DataFrame, hashes: dict[int, int], max_bits: int) -> None:
