@@ -44,6 +44,9 @@ class ImageFault(EmbedError):
         super().__init__(f"{path}: {reason} (during this run; run again to re-collect)")
         self.sha256, self.path, self.status, self.reason = sha256, path, status, reason
 
+    def __reduce__(self):  # picklable with its fields (a Ray worker sends it to the driver)
+        return (type(self), (self.sha256, self.path, self.status, self.reason))
+
 
 @dataclass
 class Embeddings:
@@ -155,7 +158,7 @@ def embed_table(
                     from explore.embed_ray import embed_on_ray
 
                     embed_on_ray(cache, items, encoder, batch_size, progress, cluster.address,
-                                 workers=cluster.workers, transfer=cluster.transfer)
+                                 workers=cluster.workers, transfer=cluster.transfer, skipped=stats.skipped)
                 else:
                     _embed_into(cache, items, encoder, batch_size, progress, streams, stats.skipped)
             except BaseException:

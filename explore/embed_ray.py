@@ -27,7 +27,7 @@ from pathlib import Path
 from contextlib import contextmanager
 from dataclasses import dataclass
 
-from explore.embed import EmbedError, embed_batch
+from explore.embed import EmbedError, ImageFault, embed_batch
 
 INSTALL_HINT = 'Ray is not installed here; install the cluster extra: pip install "explore[cluster]" (or "ray[data]")'
 
@@ -178,7 +178,8 @@ def connect(address: str):
 
 
 def embed_on_ray(cache, todo, encoder, batch_size: int, progress: bool, address: str,
-                 workers: int = 0, transfer: str = "auto", spec: EncoderSpec | None = None) -> None:
+                 workers: int = 0, transfer: str = "auto", spec: EncoderSpec | None = None,
+                 skipped: dict | None = None) -> None:
     """Embed ``todo`` ((sha256, path) pairs) on the cluster, writing each batch to ``cache``.
 
     Parameters
@@ -191,6 +192,9 @@ def embed_on_ray(cache, todo, encoder, batch_size: int, progress: bool, address:
     progress : show images done, rate and time left across the cluster.
     address, workers, transfer : see ``study.ClusterSettings``.
     spec : how workers build the encoder (default ``EncoderSpec.of(encoder)``).
+    skipped : when given, an image that changed or vanished since collect is
+        recorded here (sha256 -> (status, reason)) and the rest of its batch is
+        embedded again, as a local run does; otherwise its error is raised.
 
     Raises
     ------
@@ -220,11 +224,12 @@ def embed_on_ray(cache, todo, encoder, batch_size: int, progress: bool, address:
             except RayActorError as exc:  # the constructor failed: say why
                 raise _actor_failure(exc) from None
             queue = iter(batches)
+            retry: list = []  # batches whose changed image was left out, to embed again
             pending: dict = {}
             error: BaseException | None = None
 
             def submit(actor) -> None:
-                batch = next(queue, None)
+                batch = retry.pop() if retry else next(queue, None)
                 if batch is None:
                     return
                 try:
@@ -246,7 +251,17 @@ def embed_on_ray(cache, todo, encoder, batch_size: int, progress: bool, address:
                     try:
                         cluster, joint = ray.get(done[0])
                     except RayTaskError as exc:  # the batch's own error (e.g. an image changed)
-                        error = error or _cause(exc)
+                        cause = _cause(exc)
+                        if skipped is not None and isinstance(cause, ImageFault):
+                            skipped[cause.sha256] = (cause.status, cause.reason)
+                            bar.update(1)
+                            rest = [item for item in batch if item[0] != cause.sha256]
+                            if rest:
+                                retry.append(rest)
+                            if error is None:
+                                submit(actor)
+                            continue
+                        error = error or cause
                         continue
                     except RayActorError as exc:  # the worker died more often than Ray retries
                         error = error or _actor_failure(exc)
