@@ -18,6 +18,12 @@ well, which depends far less on that load;
 
 and the ratios a/b and a/c. Targets: a/c >= 0.8 and a/b >= 2.
 
+With ``--ray`` it adds (r): the same images through ``embed_table`` on a
+private Ray instance on this machine (one node, every server on 127.0.0.1, one
+worker per CPU), alternating with (a), best of two passes with the workers
+already holding the model, plus the first pass that starts them (cold). The
+ratio r/a is Ray's overhead against the local path; target r/a >= 0.8.
+
 ``clip`` is timed with a randomly initialised open_clip ViT-B-32 (its speed
 does not depend on the weights), loaded through ``--weights`` like a real
 checkpoint; ``bundled`` is the real bundled encoder.
@@ -25,7 +31,7 @@ checkpoint; ``bundled`` is the real bundled encoder.
 Usage::
 
     .venv/bin/python benchmarks/embed_throughput.py [--images 200] [--naive 32]
-        [--batch-size 32] [--families bundled clip]
+        [--batch-size 32] [--families bundled clip] [--ray]
 """
 
 from __future__ import annotations
@@ -112,7 +118,8 @@ def load(family: str, workdir: Path):
     return encoder, {"timm README loop": timm_one, "our encoder, one at a time": encoder_one}
 
 
-def bench_family(family: str, table, workdir: Path, batch_size: int, naive_n: int, default_threads: int) -> dict:
+def bench_family(family: str, table, workdir: Path, batch_size: int, naive_n: int, default_threads: int,
+                 use_ray: bool = False) -> dict:
     import torch
 
     from explore.embed import available_cpus, default_streams, embed_table
@@ -158,16 +165,34 @@ def bench_family(family: str, table, workdir: Path, batch_size: int, naive_n: in
         assert stats.embedded == n, stats.describe()
         return n / (time.perf_counter() - start), (time.process_time() - cpu) / n
 
-    # Other processes' load changes over minutes, so (c) and (a) alternate
+    # (r) the same through Ray workers on this machine (ray.init done in main).
+    def ray_pass(k) -> float:
+        from explore.study import ClusterSettings
+
+        start = time.perf_counter()
+        _, stats = embed_table(table, encoder, workdir / f"cache-{family}-ray-{k}", batch_size=batch_size,
+                               progress=False, cluster=ClusterSettings(address="auto"))
+        assert stats.embedded == n, stats.describe()
+        return n / (time.perf_counter() - start)
+
+    ray_cold = ray_pass("cold") if use_ray else None  # starts the workers (each loads the model)
+
+    # Other processes' load changes over minutes, so (c), (a) and (r) alternate
     # and each keeps its best of two passes.
     for layout in layouts.values():
         model_pass(layout)
     model_runs = {name: [] for name in layouts}
-    ours_runs = []
+    ours_runs, ray_runs = [], []
     for k in range(2):
         for name, layout in layouts.items():
             model_runs[name].append(model_pass(layout))
         ours_runs.append(ours_pass(k))
+        if use_ray:
+            ray_runs.append(ray_pass(k))
+    if use_ray:
+        from explore.embed_ray import release_workers
+
+        release_workers()
     model_best = {name: max(runs) for name, runs in model_runs.items()}
     model_layout = max(model_best, key=lambda name: model_best[name][0])
     model_rate, model_cpu = model_best[model_layout]
@@ -199,6 +224,8 @@ def bench_family(family: str, table, workdir: Path, batch_size: int, naive_n: in
         "model_layouts": {name: rate for name, (rate, _) in model_best.items()},
         "model_layout": model_layout,
         "naive_loops": {name: rate for name, (rate, _) in naive.items()},
+        "ray": max(ray_runs) if ray_runs else None,
+        "ray_cold": ray_cold,
     }
 
 
@@ -208,6 +235,7 @@ def main(argv=None) -> int:
     parser.add_argument("--naive", type=int, default=32, help="images timed in the naive loop (default 32)")
     parser.add_argument("--batch-size", type=int, default=32)
     parser.add_argument("--families", nargs="+", default=["bundled", "clip"], choices=["bundled", "clip"])
+    parser.add_argument("--ray", action="store_true", help="add (r): the same on a private local Ray instance")
     args = parser.parse_args(argv)
 
     import torch
@@ -219,6 +247,14 @@ def main(argv=None) -> int:
     load_avg = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
     print(f"cpus available: {available_cpus()}, torch default threads: {default_threads}, "
           f"load average (1 min) at start: {load_avg:.2f}")
+    if args.ray:
+        import ray
+
+        os.environ["RAY_ENABLE_WINDOWS_OR_OSX_CLUSTER"] = "0"  # every Ray server on 127.0.0.1
+        os.environ["PYTHONPATH"] = os.pathsep.join([str(Path(__file__).resolve().parent.parent)]
+                                                   + [p for p in [os.environ.get("PYTHONPATH")] if p])
+        ray.init(num_cpus=available_cpus(), include_dashboard=False, _node_ip_address="127.0.0.1",
+                 log_to_driver=False, configure_logging=False, _temp_dir=f"/tmp/explore-bench-ray-{os.getpid()}")
     with tempfile.TemporaryDirectory(prefix="explore-bench-") as tmp:
         workdir = Path(tmp)
         photos = workdir / "photos"
@@ -233,8 +269,11 @@ def main(argv=None) -> int:
         print(f"collect (hash, check, dHash): {len(table) / seconds:.1f} images/s")
 
         rows = [
-            bench_family(f, table, workdir, args.batch_size, args.naive, default_threads) for f in args.families
+            bench_family(f, table, workdir, args.batch_size, args.naive, default_threads, args.ray)
+            for f in args.families
         ]
+    if args.ray:
+        ray.shutdown()
 
     print()
     print(f"{'family':<8} {'(a) ours':>10} {'(b) naive':>10} {'(c) model':>10} {'a/b':>6} {'a/c':>6}   images/s, batch {args.batch_size}")
@@ -248,6 +287,13 @@ def main(argv=None) -> int:
         layouts = ", ".join(f"{name} {rate:.1f} (a/c {r['ours'] / rate:.2f})" for name, rate in r["model_layouts"].items())
         print(f"{r['family']:<8} (b) {loops}")
         print(f"{'':<8} (c) {layouts}")
+    if args.ray:
+        print()
+        print(f"{'family':<8} {'(a) ours':>10} {'(r) ray':>10} {'r/a':>6} {'ray cold':>10}   images/s; (r) on a local "
+              f"Ray instance, {available_cpus()} workers; cold = first pass, workers loading the model")
+        for r in rows:
+            print(f"{r['family']:<8} {r['ours']:>10.1f} {r['ray']:>10.1f} {r['ray'] / r['ours']:>6.2f} "
+                  f"{r['ray_cold']:>10.1f}   target r/a >= 0.8")
     print()
     print("CPU time per image (all threads of this process; does not depend on other load):")
     print(f"{'family':<8} {'(a) ours':>10} {'(b) naive':>10} {'(c) model':>10} {'c/a':>6}   ms of CPU per image")

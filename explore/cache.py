@@ -237,10 +237,12 @@ class EmbeddingCache:
         d_j = self._shards[0]["joint"].shape[1]
         cluster = np.empty((len(shas), d_c), np.float32)
         joint = np.empty((len(shas), d_j), np.float32)
-        for i, sha in enumerate(shas):
-            number, row = self._index[sha]
-            cluster[i] = self._shards[number]["cluster"][row]
-            joint[i] = self._shards[number]["joint"][row]
+        where = np.array([self._index[sha] for sha in shas], dtype=np.int64).reshape(-1, 2)
+        for number in np.unique(where[:, 0]):  # one fancy-indexing copy per shard, not per row
+            mine = where[:, 0] == number
+            shard = self._shards[number]
+            cluster[mine] = shard["cluster"][where[mine, 1]]
+            joint[mine] = shard["joint"][where[mine, 1]]
         return cluster, joint
 
     # -- writing ------------------------------------------------------------

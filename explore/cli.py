@@ -33,6 +33,42 @@ def _add_encoder_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--weights", type=Path, help="local open_clip checkpoint file for --encoder clip")
 
 
+# --- cluster options (explore/embed_ray.py) ---------------------------------------
+RAY_HELP = (
+    "embed new images on a Ray cluster (needs pip install \"explore[cluster]\"): 'auto' = a "
+    "cluster already running on this machine (ray start --head), HOST:PORT = a cluster's head "
+    "node, ray://HOST:10001 = Ray client, 'local' = a private Ray instance on this machine for "
+    "this run. Workers read the images at the same paths (a folder every node mounts), else the "
+    "driver sends the bytes. Default: the study's [cluster] address, else this machine without Ray"
+)
+
+
+def _add_cluster_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--ray", metavar="ADDRESS", help=RAY_HELP)
+    p.add_argument("--ray-workers", type=int, metavar="N", help="Ray embedding workers (default: one per cluster CPU)")
+
+
+def _cluster_settings(args, settings=None):
+    """The study's [cluster] settings with --ray/--ray-workers applied; refuses at once without Ray."""
+    from dataclasses import replace
+
+    from explore.study import ClusterSettings, StudyError
+
+    settings = settings or ClusterSettings()
+    if getattr(args, "ray", None):
+        settings = replace(settings, address=args.ray)
+    if getattr(args, "ray_workers", None) is not None:
+        if args.ray_workers < 1:
+            raise StudyError(f"--ray-workers must be at least 1, got {args.ray_workers}")
+        settings = replace(settings, workers=args.ray_workers)
+    if settings.address:
+        from explore.embed_ray import require_ray
+
+        require_ray()
+    return settings
+# --- end cluster options -----------------------------------------------------------
+
+
 # --- attributes options (explore/attributes/) ---------------------------------
 ATTRIBUTE_HELP = (
     "add an attribute for this command only, without editing the study file; repeatable. "
@@ -105,18 +141,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--pretrained", default=None, help="open_clip pretrained tag (clip only)")
     p.add_argument("--batch-size", type=int, default=32)
     _add_encoder_options(p)
+    _add_cluster_options(p)
     p.set_defaults(func=cmd_embed)
 
     p = sub.add_parser("run", help="run a study end to end (every stage, reusing the cache)")
     p.add_argument("study", type=Path, help="study file (.toml)")
     _add_labels_option(p)
     _add_encoder_options(p)
+    _add_cluster_options(p)
     _add_attribute_option(p)
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("demo", help="run the shipped demo study (fictional brands) end to end")
     _add_labels_option(p)
     _add_encoder_options(p)
+    _add_cluster_options(p)
     _add_attribute_option(p)
     p.set_defaults(func=cmd_demo)
 
@@ -316,13 +355,18 @@ def cmd_embed(args) -> int:
         for note in lock.notes:
             say(note)
         check_not_busy(args.out / "cache")  # refuse at once, not after collecting and loading a model
+        cluster = _cluster_settings(args)
         staging = Staging(args.out, lock.run_id)
         try:
             folder = staging.create()
+            from explore.collect_index import INDEX_NAME
+
+            index = args.out / "cache" / INDEX_NAME  # unchanged files are not read again
             if source.suffix.lower() == ".csv":
-                images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet)
+                images = collect.collect_images(manifest=source, root=source.parent, progress=not args.quiet,
+                                                index=index)
             else:
-                images = collect.collect_images(root=source, progress=not args.quiet)
+                images = collect.collect_images(root=source, progress=not args.quiet, index=index)
             say(collect.summarise(images))
             encoder, notice = load_encoder(
                 args.encoder or "auto",
@@ -333,7 +377,8 @@ def cmd_embed(args) -> int:
             if notice:
                 say(notice)
             _, stats = embed.embed_table(
-                images, encoder, cache_dir=args.out / "cache", batch_size=args.batch_size, progress=not args.quiet
+                images, encoder, cache_dir=args.out / "cache", batch_size=args.batch_size, progress=not args.quiet,
+                cluster=cluster,
             )
             say(stats.describe())
             for note in stats.notes:
@@ -352,6 +397,7 @@ def _run(study_path: Path, args) -> int:
     from explore.study import load_study
 
     study = _with_extra_attributes(load_study(study_path), args.attribute)
+    study.cluster = _cluster_settings(args, study.cluster)
     summary = run_study(
         study, encoder_name=args.encoder, weights=args.weights, labels_path=getattr(args, "labels", None),
         progress=not args.quiet, log=say,

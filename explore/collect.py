@@ -158,6 +158,7 @@ def open_rgb(
     draft_size: int | None = None,
     max_pixels: int = MAX_PIXELS,
     expect_sha256: str | None = None,
+    data: bytes | None = None,
 ) -> Image.Image:
     """Decode one image file to an upright 8-bit RGB PIL image.
 
@@ -172,6 +173,9 @@ def open_rgb(
     max_pixels : images larger than this are refused (decompression bombs).
     expect_sha256 : when given, the file's bytes must still hash to this
         (so vectors are never stored under the hash of other content).
+    data : the file's bytes, when they were read elsewhere (a cluster worker
+        that cannot see ``path`` gets them from the driver); ``path`` is then
+        only named in messages.
 
     Returns
     -------
@@ -183,7 +187,10 @@ def open_rgb(
     ``too_large``, ``truncated``, ``corrupt``, or ``changed`` (content differs
     from ``expect_sha256``).
     """
-    data = _read_bytes(Path(path))
+    if data is None:
+        data = _read_bytes(Path(path))
+    elif not data:
+        raise ImageProblem("empty", "the file is empty (0 bytes)")
     if expect_sha256 is not None and hashlib.sha256(data).hexdigest() != expect_sha256:
         raise ImageProblem("changed", "the file's content changed since it was collected")
     image, _ = _decode(data, draft_size, max_pixels)
@@ -646,6 +653,7 @@ def collect_images(
     seed: int = 0,
     reposts: str = "exclude",
     exclude: tuple[Path, ...] = (),
+    index: str | Path | None = None,
 ) -> pd.DataFrame:
     """Find the images and build the images table (one row per file found).
 
@@ -671,6 +679,9 @@ def collect_images(
         gets status ``repost``) or ``keep`` (stays ``ok``); ``repost_of`` is
         filled either way.
     exclude : folders under the root that are not searched (a study's output folder).
+    index : a read index file (``collect_index.ReadIndex``): files whose
+        (path, size, mtime) match an earlier successful read are not opened
+        again; updated at the end. None: read every file.
 
     Returns
     -------
@@ -703,7 +714,7 @@ def collect_images(
         raise CollectError("collect needs an images root folder or a manifest CSV")
 
     todo = [e for e in entries if not e.status]
-    results = _read_all(todo, progress, max_pixels, workers)
+    results = _read_all(todo, progress, max_pixels, workers, index)
     hashes: dict[int, int] = {}
     rows = []
     extra_names: list[str] = []
@@ -770,19 +781,32 @@ def _read_one(entry: _Entry, max_pixels: int):
         return ImageProblem("corrupt", f"unexpected error while reading: {type(exc).__name__}: {exc}")
 
 
-def _read_all(entries: list[_Entry], progress: bool, max_pixels: int, workers: int | None) -> list:
+def _read_all(entries: list[_Entry], progress: bool, max_pixels: int, workers: int | None, index=None) -> list:
     from tqdm.auto import tqdm
+
+    from explore.collect_index import ReadIndex, file_key
 
     if not entries:
         return []
+    read_index = ReadIndex(index) if index is not None else None
+    results: list = [None] * len(entries)
+    keys: list = [None] * len(entries)
+    if read_index is not None:  # unchanged files (same size and mtime) are not opened again
+        for i, entry in enumerate(entries):
+            keys[i] = file_key(entry.path)  # taken before reading: a change during the read is seen next time
+            results[i] = read_index.get(entry.path, keys[i], max_pixels)
+    todo = [i for i, result in enumerate(results) if result is None]
     workers = workers or _cpu_count()
     with ThreadPoolExecutor(max_workers=workers) as pool, tqdm(
-        total=len(entries), desc="collect", unit="file", disable=not progress
+        total=len(todo), desc="collect", unit="file", disable=not progress or not todo
     ) as bar:
-        results = []
-        for result in pool.map(lambda e: _read_one(e, max_pixels), entries):
-            results.append(result)
+        for i, result in zip(todo, pool.map(lambda i: _read_one(entries[i], max_pixels), todo)):
+            results[i] = result
+            if read_index is not None:
+                read_index.put(entries[i].path, keys[i], result)
             bar.update(1)
+    if read_index is not None:
+        read_index.save()
     return results
 
 
@@ -794,18 +818,18 @@ def _cpu_count() -> int:
 
 
 def _flag_duplicates(table: pd.DataFrame) -> None:
-    """Later copies of one content within one brand x source become ``duplicate``."""
-    first: dict[tuple, str] = {}
-    first_path: dict[tuple, str] = {}
-    for i in np.flatnonzero(table["status"].to_numpy() == "ok"):
-        sha = (table.at[i, "brand"], table.at[i, "source"], table.at[i, "sha256"])
-        if sha in first:
-            table.at[i, "status"] = "duplicate"
-            table.at[i, "duplicate_of"] = first[sha]
-            table.at[i, "reason"] = f"same content as {first_path[sha]} (kept once)"
-        else:
-            first[sha] = table.at[i, "image_id"]
-            first_path[sha] = table.at[i, "relpath"]
+    """Later copies of one content within one brand x source become ``duplicate`` (vectorised)."""
+    usable = table.loc[table["status"].to_numpy() == "ok", ["brand", "source", "sha256", "image_id", "relpath"]]
+    keys = ["brand", "source", "sha256"]
+    later = usable.duplicated(keys, keep="first").to_numpy()
+    if not later.any():
+        return
+    first = usable[~later].set_index(keys)
+    index = pd.MultiIndex.from_frame(usable.loc[later, keys])
+    rows = usable.index[later]
+    table.loc[rows, "status"] = "duplicate"
+    table.loc[rows, "duplicate_of"] = first.loc[index, "image_id"].to_numpy()
+    table.loc[rows, "reason"] = [f"same content as {p} (kept once)" for p in first.loc[index, "relpath"]]
 
 
 def _flag_reposts(table: pd.DataFrame, exclude: bool) -> None:
@@ -947,7 +971,13 @@ def _popcount(x: np.ndarray) -> np.ndarray:
 
 
 def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
-    """The images table of a study: its ``[images]`` root/manifest and ``[brands]`` categories."""
+    """The images table of a study: its ``[images]`` root/manifest and ``[brands]`` categories.
+
+    Unchanged files are not read again: the read index lives in the study's
+    cache (``OUT/cache/collect_index.parquet``, see ``collect_index``).
+    """
+    from explore.collect_index import INDEX_NAME
+
     return collect_images(
         root=study.images.root,
         manifest=study.images.manifest,
@@ -958,6 +988,7 @@ def collect_study_images(study, progress: bool = True) -> pd.DataFrame:
         seed=study.seed,
         reposts=getattr(study.images, "reposts", "exclude"),
         exclude=(study.output,),
+        index=Path(study.output) / "cache" / INDEX_NAME,
     )
 
 

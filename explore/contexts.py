@@ -25,9 +25,10 @@ Reproducibility versus speed: UMAP runs single-threaded when it is seeded
 the seed, because the same study and seed must give the same contexts, and buy
 the speed back in two ways: the nearest-neighbour graph is computed once and
 shared by both layouts (exact, by matrix products), and above ``fit_sample``
-images UMAP is fitted on a seeded sample and every other image is placed from
-its nearest sampled neighbours, as ``UMAP.transform`` starts (see
-``place_by_neighbours``).
+images UMAP and HDBSCAN are fitted on a seeded sample: every other image is
+placed on the map from its nearest sampled neighbours, as ``UMAP.transform``
+starts (see ``place_by_neighbours``), and given a context by HDBSCAN's
+``approximate_predict`` (see ``cluster_points``).
 
 Everything here works on arrays and DataFrames; ``umap`` and ``hdbscan`` are
 imported inside the functions that use them.
@@ -219,6 +220,14 @@ def place_by_neighbours(
     return np.einsum("nk,nkd->nd", weights, embedding[indices]).astype(np.float32)
 
 
+def sample_rows(n: int, parameters: dict) -> np.ndarray:
+    """The rows UMAP and HDBSCAN are fitted on: all, or a seeded sample of ``fit_sample``."""
+    if n <= parameters["fit_sample"]:
+        return np.arange(n)
+    rng = np.random.default_rng(parameters["seed"])
+    return np.sort(rng.choice(n, size=parameters["fit_sample"], replace=False))
+
+
 def reduce_with_umap(
     vectors: np.ndarray, parameters: dict, seconds: dict | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -243,12 +252,7 @@ def reduce_with_umap(
     n = len(x)
     k = parameters["neighbours"]
     seed = parameters["seed"]
-    sample = parameters["fit_sample"]
-    if n <= sample:
-        fit_rows = np.arange(n)
-    else:
-        rng = np.random.default_rng(seed)
-        fit_rows = np.sort(rng.choice(n, size=sample, replace=False))
+    fit_rows = sample_rows(n, parameters)
     rest = np.setdiff1d(np.arange(n), fit_rows)
     knn = exact_neighbours(x[fit_rows], k) + (None,)
     rest_knn = exact_neighbours(x[rest], k, base=x[fit_rows]) if len(rest) else None
@@ -281,20 +285,45 @@ def reduce_with_umap(
     return results[0], results[1]
 
 
-def cluster_points(points: np.ndarray, parameters: dict) -> tuple[np.ndarray, np.ndarray]:
-    """HDBSCAN labels (1..K by decreasing size, -1 = noise) and membership probabilities."""
+def cluster_points(
+    points: np.ndarray, parameters: dict, fit_rows: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """HDBSCAN labels (1..K by decreasing size, -1 = noise) and membership probabilities.
+
+    With ``fit_rows`` (a sample, fewer than all points) HDBSCAN is fitted on
+    the sample alone and every other point gets the cluster and membership
+    strength of ``hdbscan.approximate_predict`` (the package's way to place
+    new points in a fitted hierarchy without re-clustering). The sample's
+    ``min_cluster_size`` is scaled by sample / n, so a context needs the same
+    share of images as in a full fit; ``min_samples`` (a density, not a share)
+    stays, capped at that size. Agreement with a full fit is measured by
+    benchmarks/contexts_scale.py (``--compare``).
+    """
     import hdbscan
 
+    n = len(points)
+    points = np.asarray(points, dtype=np.float64)
+    if fit_rows is None or len(fit_rows) >= n:
+        fit_rows, min_cluster_size = np.arange(n), parameters["min_cluster_size"]
+    else:
+        min_cluster_size = max(2, round(parameters["min_cluster_size"] * len(fit_rows) / n))
     model = hdbscan.HDBSCAN(
-        min_cluster_size=parameters["min_cluster_size"],
-        min_samples=parameters["min_samples"],
+        min_cluster_size=int(min_cluster_size),
+        min_samples=int(max(1, min(parameters["min_samples"], min_cluster_size))),
         cluster_selection_method=parameters["cluster_selection_method"],
         core_dist_n_jobs=1,
+        prediction_data=len(fit_rows) < n,
     )
+    raw = np.full(n, -1, dtype=np.int64)
+    membership = np.zeros(n, dtype=np.float64)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        raw = model.fit_predict(np.asarray(points, dtype=np.float64))
-    membership = np.asarray(model.probabilities_, dtype=np.float64)
+        raw[fit_rows] = model.fit_predict(points[fit_rows])
+        membership[fit_rows] = model.probabilities_
+        rest = np.setdiff1d(np.arange(n), fit_rows)
+        if len(rest):
+            rest_labels, rest_strength = hdbscan.approximate_predict(model, points[rest])
+            raw[rest], membership[rest] = rest_labels, rest_strength
     return relabel_by_size(raw), np.where(raw < 0, 0.0, membership)
 
 
@@ -332,7 +361,7 @@ def find_contexts(vectors: np.ndarray, settings: ContextSettings, seed: int = 0)
     seconds: dict[str, float] = {}
     points, map_xy = reduce_with_umap(vectors, parameters, seconds)
     start = time.perf_counter()
-    labels, membership = cluster_points(points, parameters)
+    labels, membership = cluster_points(points, parameters, sample_rows(len(vectors), parameters))
     seconds["hdbscan"] = round(time.perf_counter() - start, 2)
     fit = ContextFit(labels, membership, points, map_xy, parameters, seconds)
     parameters["contexts_found"] = fit.n_contexts

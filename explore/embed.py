@@ -44,6 +44,9 @@ class ImageFault(EmbedError):
         super().__init__(f"{path}: {reason} (during this run; run again to re-collect)")
         self.sha256, self.path, self.status, self.reason = sha256, path, status, reason
 
+    def __reduce__(self):  # picklable with its fields (a Ray worker sends it to the driver)
+        return (type(self), (self.sha256, self.path, self.status, self.reason))
+
 
 @dataclass
 class Embeddings:
@@ -96,6 +99,7 @@ def embed_table(
     batch_size: int = 32,
     progress: bool = True,
     streams: int | None = None,
+    cluster=None,
 ) -> tuple[Embeddings, EmbedStats]:
     """Vectors for every usable image of ``table``, embedding only what the cache lacks.
 
@@ -112,6 +116,9 @@ def embed_table(
     streams : batches embedded at once, each decoding then encoding in its own
         thread with ``cpus // streams`` torch threads (default: one per CPU,
         at most ``MAX_STREAMS``).
+    cluster : a ``study.ClusterSettings``; with an ``address`` the new images
+        are embedded on that Ray cluster (``embed_ray``), into the same cache
+        and with the same keys; without one (default) here.
 
     Returns
     -------
@@ -146,9 +153,14 @@ def embed_table(
                 path_of.setdefault(sha, path)
             start = time.perf_counter()
             try:
-                _embed_into(
-                    cache, [(s, path_of[s]) for s in todo], encoder, batch_size, progress, streams, stats.skipped
-                )
+                items = [(s, path_of[s]) for s in todo]
+                if cluster is not None and cluster.address:
+                    from explore.embed_ray import embed_on_ray
+
+                    embed_on_ray(cache, items, encoder, batch_size, progress, cluster.address,
+                                 workers=cluster.workers, transfer=cluster.transfer, skipped=stats.skipped)
+                else:
+                    _embed_into(cache, items, encoder, batch_size, progress, streams, stats.skipped)
             except BaseException:
                 try:
                     cache.compact()  # merge what was written; never hide the first error (e.g. a full disk)
@@ -186,7 +198,8 @@ def embed_batch(encoder, items, draft_size: int | None = None) -> tuple[np.ndarr
     Parameters
     ----------
     encoder : an ``explore.encoders.base.Encoder``.
-    items : (sha256, path) pairs; each file must still hash to its sha256.
+    items : (sha256, path) pairs, or (sha256, path, bytes) when the file was
+        read elsewhere; each file must still hash to its sha256.
     draft_size : JPEGs are decoded at reduced scale, both sides at least this
         (default: just above ``encoder.input_size / 0.875``).
 
@@ -206,9 +219,12 @@ def embed_batch(encoder, items, draft_size: int | None = None) -> tuple[np.ndarr
         # so a phone photo is decoded at 1/4 or 1/8 scale, not in full.
         draft_size = int(encoder.input_size / 0.875) + 1
     tensors = []
-    for sha, path in items:
+    for item in items:  # (sha256, path), or (sha256, path, bytes) read elsewhere
+        sha, path = item[0], item[1]
+        data = item[2] if len(item) > 2 else None
         try:
-            tensors.append(encoder.preprocess(open_rgb(path, draft_size=draft_size, expect_sha256=sha)))
+            image = open_rgb(path, draft_size=draft_size, expect_sha256=sha, data=data)
+            tensors.append(encoder.preprocess(image))
         except ImageProblem as problem:
             raise ImageFault(sha, str(path), problem.status, problem.reason) from None
     with torch.inference_mode():

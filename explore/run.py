@@ -231,6 +231,7 @@ def _run_stages(
             cache_dir=out / "cache",
             batch_size=settings.batch_size,
             progress=progress,
+            cluster=study.cluster,
         )
         summary.images_embedded = stats.embedded
         log(stats.describe())

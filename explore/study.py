@@ -67,6 +67,28 @@ class EncoderSettings:
 
 
 @dataclass
+class ClusterSettings:
+    """Where embedding runs: here (default) or on a Ray cluster (``pip install "explore[cluster]"``).
+
+    address: "" = this machine only; "auto" = a Ray cluster already running on
+        this machine (``ray start --head``); "HOST:PORT" = a cluster's head
+        node; "ray://HOST:10001" = Ray client; "local" = start a private Ray
+        instance on this machine for the run.
+    workers: embedding workers (each loads the model once); 0 = one per CPU
+        of the cluster.
+    transfer: "auto" (workers read the image paths when they can see them,
+        else the driver sends the bytes), "path" or "bytes".
+    """
+
+    address: str = ""
+    workers: int = 0
+    transfer: str = "auto"
+
+
+CLUSTER_TRANSFERS = ("auto", "path", "bytes")
+
+
+@dataclass
 class Attribute:
     """An attribute to score zero-shot: a name and descriptions of both sides."""
 
@@ -98,9 +120,10 @@ class ContextSettings:
     cluster_selection: HDBSCAN cluster selection, "leaf" (default: finer,
         more homogeneous contexts) or "eom" (HDBSCAN's own default).
     cluster_dimensions: UMAP dimensions HDBSCAN clusters in (default 10).
-    fit_sample: above this many images UMAP is fitted on a seeded sample of
-        this size and every other image is placed from its nearest sampled
-        images (default 20000).
+    fit_sample: above this many images UMAP and HDBSCAN are fitted on a
+        seeded sample of this size; every other image is placed from its
+        nearest sampled images and given a context by HDBSCAN's
+        approximate_predict (default 20000).
     vocabulary, extra_phrases, replace_vocabulary: the phrases contexts are
         named from (default: explore/data/context_vocabulary.txt, extended by
         the file and the extra phrases; replaced when replace_vocabulary).
@@ -173,6 +196,7 @@ class Study:
     seed: int = 0
     brands: dict[str, str] = field(default_factory=dict)
     encoder: EncoderSettings = field(default_factory=EncoderSettings)
+    cluster: ClusterSettings = field(default_factory=ClusterSettings)
     scoring: ScoringSettings = field(default_factory=ScoringSettings)
     attributes: list[Attribute] = field(default_factory=list)
     contexts: ContextSettings = field(default_factory=ContextSettings)
@@ -196,6 +220,7 @@ _TOP_LEVEL_KEYS = {
     "images": "a table",
     "brands": "a table of brand = category",
     "encoder": "a table",
+    "cluster": "a table",
     "scoring": "a table",
     "attribute": "an array of tables ([[attribute]])",
     "contexts": "a table",
@@ -282,6 +307,14 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
     if encoder.batch_size < 1:
         raise StudyError(f"{where}: key 'encoder.batch_size' must be at least 1")
 
+    cluster = _section(raw, "cluster", ClusterSettings, where, base)
+    if cluster.workers < 0:
+        raise StudyError(f"{where}: key 'cluster.workers' must be 0 (one per CPU) or more")
+    if cluster.transfer not in CLUSTER_TRANSFERS:
+        raise StudyError(
+            f"{where}: key 'cluster.transfer' is '{cluster.transfer}'; expected one of {', '.join(CLUSTER_TRANSFERS)}"
+        )
+
     scoring = _section(raw, "scoring", ScoringSettings, where, base)
     if not 0.0 < scoring.threshold < 1.0:
         raise StudyError(f"{where}: key 'scoring.threshold' must lie strictly between 0 and 1")
@@ -309,6 +342,7 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
         seed=seed,
         brands=brands,
         encoder=encoder,
+        cluster=cluster,
         scoring=scoring,
         attributes=attributes,
         contexts=contexts,

@@ -446,6 +446,24 @@ def test_sampled_fit_places_the_rest(blobs):
     np.testing.assert_array_equal(a.labels, b.labels)
 
 
+def test_sample_fit_agrees_with_full_fit(blobs):
+    # UMAP and HDBSCAN fitted on a 300-image sample, the rest placed (neighbour
+    # mean on the map, hdbscan.approximate_predict for the context), against
+    # one fit on every image: adjusted Rand index (sklearn) between the two.
+    from sklearn.metrics import adjusted_rand_score
+
+    x, y = blobs
+    full = ctx.find_contexts(x, ContextSettings(fit_sample=len(y)), seed=1)
+    sampled = ctx.find_contexts(x, ContextSettings(fit_sample=300), seed=1)
+    rest = np.setdiff1d(np.arange(len(y)), ctx.sample_rows(len(y), sampled.parameters))
+    assert len(rest) > 0
+    agreement = adjusted_rand_score(full.labels, sampled.labels)
+    print(f"blobs: sample fit vs full fit ARI {agreement:.3f}")
+    assert agreement >= 0.9
+    assert (sampled.labels[rest] > 0).mean() >= 0.9  # placed images get a context, not noise
+    assert (sampled.membership[rest] > 0).mean() >= 0.9
+
+
 def test_run_contexts_tables(blobs):
     x, y = blobs
     n = len(y)
