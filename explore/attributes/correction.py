@@ -40,8 +40,15 @@ When the attribute is not shown to be better than chance on its random
 labels (DeLong AUC interval includes 0.5, or too few of a class) lambda is 0:
 the share then rests on the labels alone.
 
-Everything is a pure function over arrays and DataFrames; ``clusters`` is an
-optional hook for poster-robust variance (not implemented here).
+Posters. Photos of one poster are not independent. When the images table
+names posters, each variance term is the larger of the one above and the
+cluster-robust (sandwich, CR1) variance of the same mean with posters as
+clusters, G/(G-1) * sum_g (sum_{i in g} (x_i - mean))^2 / m^2 over the G
+posters of the m photos (Liang & Zeger 1986; the variance behind
+``explore.attributes.clustering``'s Kish design effect, never below 1). Without
+poster ids photos are assumed independent, as everywhere else.
+
+Everything is a pure function over arrays and DataFrames.
 """
 
 from __future__ import annotations
@@ -66,7 +73,8 @@ class Stratum:
     f_all: np.ndarray  # (N,) probabilities of every image of the stratum
     f_labelled: np.ndarray  # (n,) probabilities of the labelled images
     y: np.ndarray  # (n,) 0/1 labels
-    clusters: np.ndarray | None = None  # (n,) poster ids of the labelled images (hook; unused)
+    clusters: np.ndarray | None = None  # (n,) poster ids of the labelled images (None: independent)
+    clusters_all: np.ndarray | None = None  # (N,) poster ids of every image of the stratum
 
 
 def ppi_lambda(strata: Sequence[Stratum], ddof: int = 1) -> float:
@@ -105,6 +113,30 @@ def explained_share(strata: Sequence[Stratum], lam: float) -> float:
     return float(np.clip(1 - ss_r / ss_y, 0.0, 1.0))
 
 
+def clustered_variance(x: np.ndarray, clusters: np.ndarray | None, ddof: int = 1) -> float:
+    """Variance of one observation for the mean of ``x``: the plain one, or the poster-robust one when larger.
+
+    Returned on the scale of ``var(x)`` (so ``/ len(x)`` gives the variance of
+    the mean): ``m * V_CR1`` with V_CR1 the cluster-robust variance of the mean
+    (Liang & Zeger 1986, small-sample factor G/(G-1)). With no poster ids, or
+    fewer than 2 posters, the plain variance.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    m = len(x)
+    plain = float(np.var(x, ddof=ddof)) if m > ddof else 0.0
+    if clusters is None or m < 2:
+        return plain
+    from explore.attributes.clustering import cluster_codes
+
+    codes = cluster_codes(clusters, m)
+    g = int(codes.max()) + 1
+    if g < 2 or g >= m:
+        return plain
+    sums = np.bincount(codes, weights=x - x.mean(), minlength=g)
+    robust = g / (g - 1) * float((sums**2).sum()) / m  # m * V_CR1
+    return max(plain, robust)
+
+
 def stratum_estimate(
     s: Stratum, lam: float, *, r2: float = 0.0, floor: bool = True, z: float = Z95, ddof: int = 1
 ) -> tuple[float, float]:
@@ -119,8 +151,8 @@ def stratum_estimate(
         return float("nan"), float("nan")
     resid = lam * s.f_labelled - s.y
     estimate = lam * float(s.f_all.mean()) - float(resid.mean())
-    var_f = float(np.var(s.f_all, ddof=ddof)) if N > ddof else 0.0
-    var_r = float(np.var(resid, ddof=ddof)) if n > ddof else 0.0
+    var_f = clustered_variance(s.f_all, s.clusters_all, ddof) if N > ddof else 0.0
+    var_r = clustered_variance(resid, s.clusters, ddof) if n > ddof else 0.0
     if floor:
         k = float(s.y.sum())
         p = (k + z**2 / 2) / (n + z**2)
@@ -151,6 +183,7 @@ def _attribute_strata(prob: pd.DataFrame, lab: pd.DataFrame, meta: pd.DataFrame,
     lm = lab.assign(image_id=lab["image_id"].astype(str))
     lm = lm[lm["image_id"].isin(f_of)].join(meta, on="image_id", how="inner")
     by_cell = {k: g for k, g in lm.groupby(["brand", "category", "source"], sort=False)}
+    posters = "poster" in meta.columns and (meta["poster"] != "").any()
     strata: dict[tuple, Stratum] = {}
     for key, g in pm.groupby(["brand", "category", "source"], sort=True):
         mine = by_cell.get(key, lm.iloc[0:0])
@@ -158,6 +191,8 @@ def _attribute_strata(prob: pd.DataFrame, lab: pd.DataFrame, meta: pd.DataFrame,
             f_all=g["probability"].to_numpy(np.float64),
             f_labelled=np.array([f_of[i] for i in mine["image_id"]], dtype=np.float64),
             y=mine["label"].to_numpy(np.float64),
+            clusters=mine["poster"].to_numpy(object) if posters else None,
+            clusters_all=g["poster"].to_numpy(object) if posters else None,
         )
     lam, r2, auc = attribute_lambda(list(strata.values()), auc_gate)
     return strata, lam, r2, auc
@@ -185,7 +220,6 @@ def corrected_shares(
     labels: pd.DataFrame,
     *,
     auc_gate: bool = True,
-    clusters: str | None = None,
 ) -> pd.DataFrame:
     """Corrected shares per brand x source, brand, category x source and category.
 
@@ -193,11 +227,11 @@ def corrected_shares(
     ----------
     probabilities : long table image_id, attribute, probability (the zero-shot
         probability: nothing fitted on the labels enters it).
-    images : usable images (image_id, brand, category, source).
+    images : usable images (image_id, brand, category, source[, poster]); a
+        non-empty ``poster`` column makes every variance poster-robust.
     labels : *random* labels: image_id, attribute, label (0/1).
     auc_gate : use lambda = 0 when the attribute's DeLong AUC interval on its
         random labels includes 0.5 (or a class has fewer than 2 labels).
-    clusters : reserved for a poster column (poster-robust variance); must be None.
 
     Returns
     -------
@@ -209,8 +243,6 @@ def corrected_shares(
     ``label_auc_low``, ``label_auc_high``. A group with a stratum lacking
     labels gets NaN numbers.
     """
-    if clusters is not None:
-        raise NotImplementedError("poster-robust variance is not implemented in this module")
     columns = [
         "level", "brand", "category", "source", "attribute", "share", "share_low", "share_high",
         "share_method", "share_lambda", "labels_used", "labels_positive", "labels_only",
@@ -218,7 +250,8 @@ def corrected_shares(
     ]
     if labels is None or labels.empty or probabilities.empty:
         return pd.DataFrame(columns=columns)
-    meta = images.set_index("image_id")[["brand", "category", "source"]].astype(str)
+    cols = ["brand", "category", "source"] + (["poster"] if "poster" in images.columns else [])
+    meta = images.set_index("image_id")[cols].fillna("").astype(str)
     rows = []
     for attribute, lab in labels.groupby("attribute", sort=False):
         prob = probabilities[probabilities["attribute"] == attribute]
@@ -258,7 +291,8 @@ def corrected_gaps(
     columns = ["brand", "category", "attribute", "share_gap", "share_gap_low", "share_gap_high"]
     if labels is None or labels.empty or probabilities.empty:
         return pd.DataFrame(columns=columns)
-    meta = images.set_index("image_id")[["brand", "category", "source"]].astype(str)
+    cols = ["brand", "category", "source"] + (["poster"] if "poster" in images.columns else [])
+    meta = images.set_index("image_id")[cols].fillna("").astype(str)
     rows = []
     for attribute, lab in labels.groupby("attribute", sort=False):
         prob = probabilities[probabilities["attribute"] == attribute]
