@@ -175,3 +175,13 @@ def test_advice_when_results_are_thin():
     contexts = pd.DataFrame({"context_id": [1, 2, -1], "size": [40, 35, 5]})
     defs = pd.DataFrame({"attribute": ["rugged"]})
     assert advice_lines({"images": images, "contexts": contexts, "attribute_definitions": defs}) == []
+
+
+def test_attribute_gap_quotes_the_corrected_share_gap_written_by_the_attributes_stage():
+    # attribute_gaps carries the hand-label corrected gap as share_gap*; the tested number stays the yes-rate gap.
+    rows = _gap_rows(q_value=0.01, share_gap=0.18, share_gap_low=0.02, share_gap_high=0.34)
+    f = findings_table({"attribute_gaps": rows})
+    assert f.iloc[0]["sentence"].startswith("The model's yes-rate for “rugged”")
+    assert ("Corrected with the random hand labels, the gap in the share of photos showing it is +18 points "
+            "(95 % CI +2 to +34).") in f.iloc[0]["sentence"]
+    assert "Corrected" not in findings_table({"attribute_gaps": _gap_rows(q_value=0.01)}).iloc[0]["sentence"]

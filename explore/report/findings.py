@@ -253,6 +253,10 @@ def _attribute_findings(tables, fdr: float) -> tuple[list[dict], str]:
         if np.isfinite(adj):
             text += (f" Within the same contexts the gap is {points(adj, d)} points "
                      f"(95 % CI {points(alo, d)} to {points(ahi, d)}).")
+        sg, sglo, sghi = (_f(rec.get(c)) for c in ("share_gap", "share_gap_low", "share_gap_high"))
+        if what == "model's yes-rate" and np.isfinite(sg):
+            text += (f" Corrected with the random hand labels, the gap in the share of photos showing it is "
+                     f"{points(sg, d)} points (95 % CI {points(sglo, d)} to {points(sghi, d)}).")
         q_ctx = _f(rec.get("context_q_value"))
         out.append(dict(
             brand=brand, category=str(rec.get("category", "") or ""), kind="attribute gap", sentence=text,
