@@ -581,23 +581,12 @@ def fisher_pvalues(a, b, c, d) -> np.ndarray:
 def benjamini_hochberg(p_values) -> np.ndarray:
     """Benjamini-Hochberg (1995) adjusted p-values (q-values); NaN stays NaN.
 
-    q_(i) = min over j >= i of p_(j) * m / j for the sorted p-values, capped at 1,
-    where m counts the non-missing p-values.
+    One implementation serves every corrected family:
+    ``explore.attributes.testing.benjamini_hochberg`` (attributes is an earlier stage).
     """
-    p = np.asarray(p_values, dtype=np.float64)
-    q = np.full(p.shape, np.nan)
-    ok = ~np.isnan(p)
-    m = int(ok.sum())
-    if m == 0:
-        return q
-    values = p[ok]
-    order = np.argsort(values, kind="stable")
-    ranked = values[order] * m / np.arange(1, m + 1)
-    ranked = np.minimum.accumulate(ranked[::-1])[::-1]
-    adjusted = np.empty(m)
-    adjusted[order] = np.minimum(ranked, 1.0)
-    q[ok] = adjusted
-    return q
+    from explore.attributes.testing import benjamini_hochberg as adjust
+
+    return adjust(p_values)
 
 
 #: Poster permutations per test (p = (1 + hits) / (1 + permutations)).

@@ -46,6 +46,8 @@ from pathlib import Path
 
 import pandas as pd
 
+from explore.cache import _try_lock, _unlock  # the one non-blocking file lock, shared with the cache
+
 LOCK_FILE = "lock"
 JOURNAL = ".publishing"
 STAGING_PREFIX = ".staging-"
@@ -487,23 +489,3 @@ def _fsync_path(path: Path) -> None:
     finally:
         os.close(fd)
 
-
-try:
-    import fcntl
-
-    def _try_lock(fd: int) -> None:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-
-    def _unlock(fd: int) -> None:
-        fcntl.flock(fd, fcntl.LOCK_UN)
-
-except ImportError:  # Windows
-    import msvcrt
-
-    def _try_lock(fd: int) -> None:
-        os.lseek(fd, 0, os.SEEK_SET)
-        msvcrt.locking(fd, msvcrt.LK_NBLCK, 1)
-
-    def _unlock(fd: int) -> None:
-        os.lseek(fd, 0, os.SEEK_SET)
-        msvcrt.locking(fd, msvcrt.LK_UNLCK, 1)

@@ -176,6 +176,12 @@ def combine(parts: Sequence[tuple[float, float]], weights: Sequence[float], z: f
     return e, max(0.0, e - half), min(1.0, e + half)
 
 
+def _stratum_meta(images: pd.DataFrame) -> pd.DataFrame:
+    """Per image_id: brand, category, source (the strata) and the poster when the table has one."""
+    cols = ["brand", "category", "source"] + (["poster"] if "poster" in images.columns else [])
+    return images.set_index("image_id")[cols].fillna("").astype(str)
+
+
 def _attribute_strata(prob: pd.DataFrame, lab: pd.DataFrame, meta: pd.DataFrame, auc_gate: bool):
     """One attribute's strata, lambda, pooled R^2 and the AUC (with DeLong interval) of its random labels."""
     f_of = dict(zip(prob["image_id"].astype(str), prob["probability"].astype(np.float64)))
@@ -250,8 +256,7 @@ def corrected_shares(
     ]
     if labels is None or labels.empty or probabilities.empty:
         return pd.DataFrame(columns=columns)
-    cols = ["brand", "category", "source"] + (["poster"] if "poster" in images.columns else [])
-    meta = images.set_index("image_id")[cols].fillna("").astype(str)
+    meta = _stratum_meta(images)
     rows = []
     for attribute, lab in labels.groupby("attribute", sort=False):
         prob = probabilities[probabilities["attribute"] == attribute]
@@ -291,8 +296,7 @@ def corrected_gaps(
     columns = ["brand", "category", "attribute", "share_gap", "share_gap_low", "share_gap_high"]
     if labels is None or labels.empty or probabilities.empty:
         return pd.DataFrame(columns=columns)
-    cols = ["brand", "category", "source"] + (["poster"] if "poster" in images.columns else [])
-    meta = images.set_index("image_id")[cols].fillna("").astype(str)
+    meta = _stratum_meta(images)
     rows = []
     for attribute, lab in labels.groupby("attribute", sort=False):
         prob = probabilities[probabilities["attribute"] == attribute]
