@@ -173,7 +173,7 @@ def test_corrected_shares_in_the_stage_use_zero_shot_not_the_probe():
     assert cols.index("share") == cols.index("yes_rate_index") + 1
     assert tables["attribute_gaps"]["share_gap"].notna().all()
     assert any("yes-rate with them is still the model's yes-rate, not a prevalence" in n for n in notes)
-    assert any("corrected shares from" in n for n in notes)
+    assert any("attribute 'sunny': corrected shares from 60 random labels" in n for n in notes), notes  # every label, not one cell's
     # hand-written labels (no design): no corrected shares, and the notes say why
     plain = labels.drop(columns="sample").assign(sample="")
     tables, notes = A.attribute_tables(images, images.image_id.tolist(), joint, joint, [attr], scoring, enc,

@@ -306,7 +306,7 @@ def attribute_tables(
             how = (f"PPI++ with lambda {r.share_lambda:.2f}" if r.share_lambda > 0
                    else "the labels alone: the model is not shown to be better than chance")
             notes.append(
-                f"attribute '{name}': corrected shares from {int(mine['labels_used'].max())} random labels "
+                f"attribute '{name}': corrected shares from {int((random['attribute'] == name).sum())} random labels "
                 f"by {how} (AUC {r.label_auc:.2f}, 95 % {r.label_auc_low:.2f}-{r.label_auc_high:.2f})"
             )
         if str(d.get("threshold_from", "")).startswith("check"):
