@@ -4,7 +4,7 @@ The yes-rate is the fraction of photos the model calls positive (probability at
 or above the threshold). It is *not* the share of photos showing the attribute:
 it carries the classifier's errors, and its Wilson interval covers sampling
 noise only. Mean probabilities get seeded bootstrap percentile intervals
-(resampling within each brand x source cell), and consumer-vs-owned differences
+(resampling within each brand x source cell, posters as clusters), and consumer-vs-owned differences
 of yes-rates Newcombe's hybrid score interval.
 """
 
@@ -57,7 +57,8 @@ def attribute_shares(
     yes_rate_index (100 x yes_rate / the category's yes-rate for the same
     source and attribute; NaN when that is 0),
     mean_probability, mean_low, mean_high (95 % percentile bootstrap,
-    resampling within each brand x source cell), posters (distinct posters,
+    resampling within each brand x source cell, whole posters at a time
+    when posters are known), posters (distinct posters,
     an unknown poster counting one per photo), design_effect, clustering
     (how photos were treated), threshold, encoder_id.
     """
@@ -86,8 +87,8 @@ def attribute_shares(
     cells = {}
     for key, frame in meta.groupby(["brand", "category", "source"], sort=True):
         index = meta.index.get_indexer(frame.index)
-        sums = bootstrap_sums(prob_v[index], bootstrap_samples, _group_rng(seed, key))
-        cells[key] = (index, sums)
+        cells[key] = (index, poster_bootstrap_sums(prob_v[index], posters[index], bootstrap_samples,
+                                                   _group_rng(seed, key)))
 
     groups = []  # (level, brand, category, source, cell keys)
     for level in ("brand", "category"):
@@ -111,7 +112,8 @@ def attribute_shares(
         note = clustering_note(design)
         means = prob_v[index].mean(axis=0)
         if bootstrap_samples > 0:
-            mean_low, mean_high = _percentiles(sum(cells[k][1] for k in keys) / n)
+            resampled = sum(cells[k][1] for k in keys)  # (samples, attributes + 1): sums, then photos
+            mean_low, mean_high = _percentiles(resampled[:, :-1] / resampled[:, -1:])
         else:
             mean_low = mean_high = np.full(len(names), np.nan)
         for j, name in enumerate(names):
@@ -128,6 +130,31 @@ def attribute_shares(
     with np.errstate(divide="ignore", invalid="ignore"):
         table.insert(table.columns.get_loc("yes_rate_high") + 1, "yes_rate_index", np.where(base > 0, 100 * table["yes_rate"] / base, np.nan))
     return table
+
+
+def poster_bootstrap_sums(values: np.ndarray, posters: np.ndarray, samples: int, rng) -> np.ndarray:
+    """Bootstrap resamples of one cell, drawing posters (clusters) rather than photos.
+
+    Photos of one poster are not independent, so a resample draws whole posters
+    with replacement (the cluster bootstrap, Davison & Hinkley 1997, section 3.8);
+    a photo whose poster is unknown ("") is its own cluster, so without posters
+    this is the ordinary bootstrap of photos with the same draws. Returns
+    (samples, k + 1): the resampled column sums, then the resampled number of
+    photos (it varies when posters post different numbers of photos), so a
+    group's resampled mean is the ratio of its cells' summed sums and counts.
+    """
+    v = np.asarray(values, dtype=np.float64)
+    posters = np.asarray(posters, dtype=object).astype(str)
+    known = posters != ""
+    if known.any():
+        names = np.where(known, posters, np.array([f"\0{i}" for i in range(len(posters))], dtype=object))
+        _, cluster = np.unique(names.astype(str), return_inverse=True)
+        g = int(cluster.max()) + 1
+        totals = np.zeros((g, v.shape[1] + 1))
+        np.add.at(totals, cluster, np.column_stack([v, np.ones(len(v))]))
+    else:
+        totals = np.column_stack([v, np.ones(len(v))])
+    return bootstrap_sums(totals, samples, rng)
 
 
 def attribute_gaps(shares: pd.DataFrame, fdr: float = GAP_FDR) -> pd.DataFrame:
