@@ -25,6 +25,7 @@ Run: ``.venv/bin/python benchmarks/near_duplicates.py`` (needs openclipart-png).
 
 from __future__ import annotations
 
+import hashlib
 import io
 import os
 import sys
@@ -60,7 +61,7 @@ def originals() -> list[tuple[str, Image.Image, int]]:
     for k, folder in enumerate(folders):
         files = []
         for f in sorted(folder.rglob("*.png")):
-            digest = collect.hashlib.sha256(f.read_bytes()).hexdigest()
+            digest = hashlib.sha256(f.read_bytes()).hexdigest()
             if digest not in seen and f.name not in seen:
                 seen.update((digest, f.name))
                 files.append(f)
@@ -116,7 +117,7 @@ def main() -> None:
         encoder = encoder[0] if isinstance(encoder, tuple) else encoder
         vectors = []
         for k in range(0, len(items), 32):
-            batch = [(collect.hashlib.sha256(p.read_bytes()).hexdigest(), p) for p in items[k : k + 32]]
+            batch = [(hashlib.sha256(p.read_bytes()).hexdigest(), p) for p in items[k : k + 32]]
             vectors.append(embed_batch(encoder, batch)[0])
         cluster = np.concatenate(vectors)
         seconds = time.perf_counter() - start

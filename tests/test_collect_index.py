@@ -27,7 +27,7 @@ def counted(monkeypatch):
         opened.append(entry.path)
         return real(entry, max_pixels)
 
-    monkeypatch.setattr(collect, "_read_one", spy)
+    monkeypatch.setattr(collect.table, "_read_one", spy)  # where collect_images looks it up
     return opened
 
 
