@@ -462,6 +462,18 @@ def _read_phrases(path: Path) -> list[str]:
     return [s.strip() for s in lines if s.strip() and not s.strip().startswith("#")]
 
 
+def standardised_similarities(joint: np.ndarray, phrase_vectors: np.ndarray) -> np.ndarray:
+    """Cosine similarity of every image to every phrase, standardised per phrase over the images."""
+    sims = _normalise(joint) @ _normalise(phrase_vectors).T
+    return (sims - sims.mean(axis=0)) / (sims.std(axis=0) + 1e-12)
+
+
+def _context_ids(labels: np.ndarray) -> np.ndarray:
+    """The context ids present (sorted; after merges or drops there may be gaps)."""
+    labels = np.asarray(labels)
+    return np.unique(labels[labels > 0]).astype(int)
+
+
 def distinctiveness(joint: np.ndarray, labels: np.ndarray, phrase_vectors: np.ndarray) -> np.ndarray:
     """Distinctiveness of each phrase for each context: (K, m).
 
@@ -484,9 +496,8 @@ def distinctiveness(joint: np.ndarray, labels: np.ndarray, phrase_vectors: np.nd
     Most wrong names there came from the images side (e.g. party balloons
     read as balls), not from this score.
     """
-    sims = _normalise(joint) @ _normalise(phrase_vectors).T
-    sims = (sims - sims.mean(axis=0)) / (sims.std(axis=0) + 1e-12)
-    ids = np.arange(1, int(labels.max()) + 1) if (labels > 0).any() else np.array([], int)
+    sims = standardised_similarities(joint, phrase_vectors)
+    ids = _context_ids(labels)
     affinity = np.stack([sims[labels == c].mean(axis=0) for c in ids]) if len(ids) else np.zeros((0, sims.shape[1]))
     if len(ids) <= 1:
         return affinity
@@ -501,43 +512,76 @@ def name_contexts(
     phrases: list[str] | None = None,
     phrase_vectors: np.ndarray | None = None,
     alternatives: int = 3,
+    *,
+    renames: dict[int, str] | None = None,
+    seed: int = 0,
 ) -> pd.DataFrame:
-    """One unique name per context, chosen zero-shot by distinctiveness.
+    """One unique name per context, chosen zero-shot by distinctiveness, with its confidence.
 
     Names are assigned jointly (``scipy.optimize.linear_sum_assignment``,
     maximising total distinctiveness), so every context gets a different
     phrase. Without phrases (or with more contexts than phrases) the leftover
-    contexts are called "context N".
+    contexts are called "context N". Each chosen phrase gets a bootstrap
+    confidence against its free rivals (``explore.context_names``); a weak
+    one (below ``WEAK_BELOW``) is shown as "context N" and its candidates
+    are listed. ``renames`` (from the study's edits) override the shown name.
 
     Returns
     -------
-    DataFrame: context_id, context, name_score, alternatives (next best
-    phrases, " | "-separated).
+    DataFrame: context_id, context (the name shown), suggested_name (the
+    phrase the model chose), name_source (zero-shot | zero-shot, weak |
+    analyst | none), name_confidence (share of bootstrap resamples of the
+    context's photos in which the phrase stays the most distinctive free
+    phrase), name_margin (its distinctiveness minus the runner-up's),
+    runner_up, candidates (three best phrases, " | "-separated), name_score
+    (its distinctiveness), alternatives (next best phrases).
     """
     from scipy.optimize import linear_sum_assignment
 
-    ids = np.arange(1, int(labels.max()) + 1) if (labels > 0).any() else np.array([], int)
+    from explore.context_names import WEAK_BELOW, name_confidence
+
+    ids = _context_ids(labels)
     names = {int(c): f"context {c}" for c in ids}
     scores = {int(c): np.nan for c in ids}
     others = {int(c): "" for c in ids}
+    confidence = pd.DataFrame(columns=["context_id", "name_confidence", "name_margin", "runner_up_column",
+                                       "candidate_columns"])
     if len(ids) and phrases and phrase_vectors is not None and joint is not None:
+        standard = standardised_similarities(joint, phrase_vectors)
         score = distinctiveness(joint, labels, phrase_vectors)
         rows, cols = linear_sum_assignment(score, maximize=True)
+        chosen = {}
         for r, c in zip(rows, cols):
             names[int(ids[r])] = phrases[c]
             scores[int(ids[r])] = float(score[r, c])
+            chosen[int(ids[r])] = int(c)
         for r, cid in enumerate(ids):
             order = [j for j in np.argsort(-score[r], kind="stable") if phrases[j] != names[int(cid)]]
             others[int(cid)] = " | ".join(phrases[j] for j in order[:alternatives])
-    table = pd.DataFrame(
-        {
-            "context_id": [int(c) for c in ids],
-            "context": [names[int(c)] for c in ids],
-            "name_score": [scores[int(c)] for c in ids],
-            "alternatives": [others[int(c)] for c in ids],
-        }
-    )
-    return table
+        confidence = name_confidence(standard, np.asarray(labels), ids, chosen, seed=seed)
+    by_id = confidence.set_index("context_id") if len(confidence) else None
+    rows_out = []
+    for c in ids:
+        c = int(c)
+        suggested = names[c] if np.isfinite(scores[c]) else ""
+        conf = float(by_id.loc[c, "name_confidence"]) if by_id is not None and c in by_id.index else np.nan
+        margin = float(by_id.loc[c, "name_margin"]) if by_id is not None and c in by_id.index else np.nan
+        runner = int(by_id.loc[c, "runner_up_column"]) if by_id is not None and c in by_id.index else -1
+        cands = list(by_id.loc[c, "candidate_columns"]) if by_id is not None and c in by_id.index else []
+        if renames and c in renames:
+            shown, source = renames[c], "analyst"
+        elif not suggested:
+            shown, source = f"context {c}", "none"
+        elif not conf >= WEAK_BELOW:
+            shown, source = f"context {c}", "zero-shot, weak"
+        else:
+            shown, source = suggested, "zero-shot"
+        rows_out.append((c, shown, suggested, source, conf, margin,
+                         phrases[runner] if phrases and runner >= 0 else "",
+                         " | ".join(phrases[j] for j in cands) if phrases else "", scores[c], others[c]))
+    return pd.DataFrame(rows_out, columns=["context_id", "context", "suggested_name", "name_source",
+                                           "name_confidence", "name_margin", "runner_up", "candidates",
+                                           "name_score", "alternatives"])
 
 
 def exemplars(vectors: np.ndarray, labels: np.ndarray, k: int) -> dict[int, np.ndarray]:
@@ -976,11 +1020,17 @@ def run_contexts(
     rows = by_id.loc[list(image_ids), keep].reset_index()
 
     fit = find_contexts(cluster, settings, seed)
-    labels = fit.labels
+    labels, renames, edit_log = fit.labels, {}, pd.DataFrame(columns=["edit", "target", "action", "context_id", "result"])
+    if settings.edits:
+        from explore.context_names import apply_edits
+
+        relpaths = (dict(zip(by_id.index.astype(str), by_id["relpath"].astype(str)))
+                    if "relpath" in by_id.columns else None)
+        labels, renames, edit_log = apply_edits(fit.labels, image_ids, settings.edits, relpaths)
     start = time.perf_counter()
     phrases = load_vocabulary(settings) if encode_texts is not None else None
     phrase_vectors = np.asarray(encode_texts(phrases), dtype=np.float32) if phrases else None
-    named = name_contexts(joint, labels, phrases, phrase_vectors)
+    named = name_contexts(joint, labels, phrases, phrase_vectors, renames=renames, seed=seed)
     names = dict(zip(named["context_id"], named["context"]))
 
     image_contexts = pd.DataFrame(
@@ -1000,18 +1050,17 @@ def run_contexts(
     contexts["size"] = [int((labels == c).sum()) for c in contexts["context_id"]]
     contexts["exemplars"] = [" ".join(ids[near[int(c)]]) for c in contexts["context_id"]]
     unassigned = pd.DataFrame(
-        [{"context_id": UNASSIGNED_ID, "context": UNASSIGNED, "name_score": np.nan, "alternatives": "",
-          "size": fit.n_unassigned, "exemplars": ""}]
+        [{"context_id": UNASSIGNED_ID, "context": UNASSIGNED, "suggested_name": "", "name_source": "none",
+          "name_confidence": np.nan, "name_margin": np.nan, "runner_up": "", "candidates": "",
+          "name_score": np.nan, "alternatives": "", "size": int((labels == UNASSIGNED_ID).sum()), "exemplars": ""}]
     )
     contexts = pd.concat([contexts, unassigned], ignore_index=True)
     contexts["share"] = contexts["size"] / len(labels)
     for key, value in settings_record(fit.parameters, settings, encoder_id, phrases).items():
         contexts[key] = value
-    contexts = contexts[
-        ["context_id", "context", "size", "share", "name_score", "alternatives", "exemplars"]
-        + [c for c in contexts.columns if c not in
-           ("context_id", "context", "size", "share", "name_score", "alternatives", "exemplars")]
-    ]
+    first = ["context_id", "context", "size", "share", "name_source", "suggested_name", "name_confidence",
+             "name_margin", "runner_up", "candidates", "name_score", "alternatives", "exemplars"]
+    contexts = contexts[first + [c for c in contexts.columns if c not in first]]
 
     after_naming = time.perf_counter()
     table = brand_context_table(rows, labels, names, min_margin=settings.min_count, seed=seed)
@@ -1022,10 +1071,11 @@ def run_contexts(
         "signature_contexts": signature_contexts(table, settings),
         "unexpected_contexts": unexpected_contexts(table, settings),
         "source_context_gaps": source_context_gaps(rows, labels, settings, names, seed=seed),
+        "context_edits": edit_log,
     }
     before_stability = time.perf_counter()
     result["context_stability"] = (
-        context_stability(cluster, labels, settings, seed) if stability and len(labels) >= 3
+        context_stability(cluster, fit.labels, settings, seed) if stability and len(labels) >= 3
         else pd.DataFrame(columns=STABILITY_COLUMNS)
     )
     if seconds is not None:
@@ -1105,7 +1155,31 @@ def describe(tables: dict[str, pd.DataFrame]) -> list[str]:
         f"({len(tables['signature_contexts'])} and {len(tables['unexpected_contexts'])} counting the "
         f"consumer-only and owned-only rows), "
         f"{int(gaps['significant'].sum()) if len(gaps) else 0} consumer-vs-owned differences",
-    ] + _stability_notes(tables.get("context_stability"), unassigned / max(total, 1)) + _test_notes(tables)
+    ] + _naming_notes(tables) + _stability_notes(tables.get("context_stability"), unassigned / max(total, 1)) \
+        + _test_notes(tables)
+
+
+def _naming_notes(tables: dict[str, pd.DataFrame]) -> list[str]:
+    """How sure the names are, and what the analyst's edits did."""
+    from explore.context_names import NAME_RESAMPLES, WEAK_BELOW
+
+    cx = tables["contexts"]
+    real = cx[cx["context_id"] != UNASSIGNED_ID]
+    notes = []
+    if "name_source" in real.columns and len(real):
+        weak = real[real["name_source"] == "zero-shot, weak"]
+        named = real[real["name_source"].isin(["zero-shot", "zero-shot, weak"])]
+        if len(named):
+            notes.append(
+                f"contexts: {len(named) - len(weak)} of {len(named)} zero-shot names hold in at least "
+                f"{WEAK_BELOW:.0%} of {NAME_RESAMPLES} bootstrap resamples of their photos; "
+                + (f"{len(weak)} weak, shown as 'context N' with candidates: "
+                   + "; ".join(f"{r.context} ({r.candidates})" for r in weak.itertuples()) if len(weak) else "none weak")
+            )
+    edits = tables.get("context_edits")
+    if edits is not None and len(edits):
+        notes.append("contexts: study edits applied: " + "; ".join(edits["result"]))
+    return notes
 
 
 def _stability_notes(stability: pd.DataFrame | None, unassigned_share: float) -> list[str]:

@@ -108,6 +108,30 @@ class ScoringSettings:
 
 
 @dataclass
+class ContextEdit:
+    """One analyst edit of the contexts a run found (``[[contexts.edits]]``).
+
+    The context is named by ``context`` (its number in the run's contexts
+    table) or by ``image`` (an image it contains, by image_id or path
+    relative to the images root: this survives a re-run that numbers
+    contexts differently). Exactly one action: ``name`` (rename),
+    ``merge_into`` (a context number or an image of the context that absorbs
+    this one) or ``drop = true`` (its photos become unassigned).
+    """
+
+    context: int | None = None
+    image: str | None = None
+    name: str | None = None
+    merge_into: int | str | None = None
+    drop: bool = False
+    #: 1-based position among the file's [[contexts.edits]] tables, for messages.
+    position: int = 0
+
+    def target(self) -> str:
+        return f"context {self.context}" if self.context is not None else f"the context of image '{self.image}'"
+
+
+@dataclass
 class ContextSettings:
     """Settings of context discovery (UMAP + HDBSCAN) and brand x context tests.
 
@@ -153,6 +177,8 @@ class ContextSettings:
     min_count: int = 5
     rare_category_share: float = 0.05
     dominance_ratio: float = 2.0
+    #: Analyst edits applied after the contexts are found ([[contexts.edits]]).
+    edits: list[ContextEdit] = field(default_factory=list)
 
 
 @dataclass
@@ -327,7 +353,10 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
     attributes = [_attribute(item, where, i) for i, item in enumerate(attr_raw)]
     check_attributes(attributes, where)
 
-    contexts = _section(raw, "contexts", ContextSettings, where, base)
+    contexts_raw = dict(raw.get("contexts", {})) if isinstance(raw.get("contexts", {}), dict) else raw.get("contexts")
+    edits_raw = contexts_raw.pop("edits", []) if isinstance(contexts_raw, dict) else []
+    contexts = _section({"contexts": contexts_raw}, "contexts", ContextSettings, where, base)
+    contexts.edits = _context_edits(edits_raw, where)
     check_context_settings(contexts, where)
     survey = _section(raw, "survey", SurveySettings, where, base)
     labels = _section(raw, "labels", LabelsSettings, where, base)
@@ -350,6 +379,48 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
         labels=labels,
         report=report,
     )
+
+
+def _context_edits(raw: Any, where: str) -> list[ContextEdit]:
+    """Parse ``[[contexts.edits]]``: each names one context and one action; errors name the edit."""
+    if not isinstance(raw, list) or not all(isinstance(t, dict) for t in raw):
+        raise StudyError(f"{where}: key 'contexts.edits' must be an array of tables ([[contexts.edits]])")
+    allowed = ("context", "image", "name", "merge_into", "drop")
+    edits = []
+    for i, table in enumerate(raw, start=1):
+        key = f"contexts.edits[{i}]"
+        unknown = [k for k in table if k not in allowed]
+        if unknown:
+            raise StudyError(f"{where}: unknown key '{key}.{unknown[0]}'; expected one of: {', '.join(allowed)}")
+        if ("context" in table) == ("image" in table):
+            raise StudyError(f"{where}: {key} needs exactly one of 'context' (a context number) or "
+                             "'image' (an image id or path in the context)")
+        actions = [k for k in ("name", "merge_into", "drop") if k in table]
+        if len(actions) != 1:
+            raise StudyError(f"{where}: {key} needs exactly one action: 'name', 'merge_into' or 'drop = true'")
+        edit = ContextEdit(position=i)
+        if "context" in table:
+            edit.context = _expect(table["context"], int, where, f"{key}.context", "a context number (1 or more)")
+            if edit.context < 1:
+                raise StudyError(f"{where}: key '{key}.context' is {edit.context}; expected a context number (1 or more)")
+        else:
+            edit.image = _expect(table["image"], str, where, f"{key}.image", "an image id or path").strip()
+        if "name" in table:
+            edit.name = _expect(table["name"], str, where, f"{key}.name", "a text").strip()
+            if not edit.name:
+                raise StudyError(f"{where}: key '{key}.name' is empty; expected the context's new name")
+        if "merge_into" in table:
+            value = table["merge_into"]
+            if isinstance(value, bool) or not isinstance(value, (int, str)) or (isinstance(value, int) and value < 1):
+                raise StudyError(f"{where}: key '{key}.merge_into' is {value!r}; expected a context number "
+                                 "or an image id or path of the context to merge into")
+            edit.merge_into = value.strip() if isinstance(value, str) else value
+        if "drop" in table:
+            if _expect(table["drop"], bool, where, f"{key}.drop", "true") is not True:
+                raise StudyError(f"{where}: key '{key}.drop' is false; leave the edit out instead")
+            edit.drop = True
+        edits.append(edit)
+    return edits
 
 
 def check_context_settings(settings: ContextSettings, where: str) -> None:

@@ -487,7 +487,7 @@ def test_run_contexts_tables(blobs):
     tables = ctx.run_contexts(shuffled, list(images.image_id), x, x, ContextSettings(), seed=7,
                               encode_texts=encode_texts, encoder_id="test-encoder")
     assert set(tables) == {"image_contexts", "contexts", "brand_contexts", "signature_contexts",
-                           "unexpected_contexts", "source_context_gaps", "context_stability"}
+                           "unexpected_contexts", "source_context_gaps", "context_stability", "context_edits"}
     # stability: a refit on seed 8, compared on the images assigned in both
     # (reference: sklearn.metrics.adjusted_rand_score on a refit done here)
     from sklearn.metrics import adjusted_rand_score
@@ -697,7 +697,8 @@ def test_demo_context_names_match_the_planted_ones(demo_contexts):
     # after sports, its balloons read as balls by the image model); we require 5.
     tables, truth_images, _ = demo_contexts
     planted_of = _planted_of(tables, truth_images)
-    names = tables["contexts"].set_index("context_id")["context"].to_dict()
+    # the model's chosen phrase (weak names are shown as "context N", checked below)
+    names = tables["contexts"].set_index("context_id")["suggested_name"].to_dict()
     assert set(planted_of.values()) <= set(PLANTED_KEYWORDS)
     named = set()
     print()

@@ -121,6 +121,24 @@ def _q(name) -> str:
     return f"“{name}”"
 
 
+def _weak_names(tables) -> dict[int, str]:
+    """Context id -> its candidate phrases, for contexts whose zero-shot name is weak."""
+    cx = tables.get("contexts")
+    if cx is None or not len(cx) or not {"name_source", "candidates"} <= set(cx.columns):
+        return {}
+    weak = cx[cx["name_source"] == "zero-shot, weak"]
+    return {int(r.context_id): str(r.candidates) for r in weak.itertuples()}
+
+
+def _context_text(rec, weak: dict[int, str]) -> str:
+    """The quoted context name; a weak one says it is unnamed and lists the model's candidates."""
+    cid = int(rec["context_id"])
+    text = _q(rec.get("context", cid))
+    if cid in weak and weak[cid]:
+        text += f" (no confident name; the model's candidates: {weak[cid].replace(' | ', ', ')})"
+    return text
+
+
 # --------------------------------------------------------------------------
 # Candidates per kind
 
@@ -135,6 +153,7 @@ def _context_findings(tables, fdr: float) -> list[dict]:
         for rec in un.to_dict("records"):
             unexpected[(str(rec["brand"]), str(rec.get("source", "all")), int(rec["context_id"]))] = rec
     out = []
+    weak = _weak_names(tables)
     for rec in sig.to_dict("records"):
         brand, source = str(rec["brand"]), str(rec.get("source", "all") or "all")
         cid, count, n = int(rec["context_id"]), _f(rec["count"]), _f(rec["brand_n"])
@@ -149,7 +168,7 @@ def _context_findings(tables, fdr: float) -> list[dict]:
         index = _f(rec.get("index"))
         q = _f(rec.get("q_value"))
         text = (
-            f"{pct(share, d)} of {whose} show {_q(rec.get('context', cid))} (95 % CI {pct(lo, d)} to {pct(hi, d)}), "
+            f"{pct(share, d)} of {whose} show {_context_text(rec, weak)} (95 % CI {pct(lo, d)} to {pct(hi, d)}), "
             f"against {pct(rest_share, d)} for {others}: index {index:.0f} (100 = as often as the category)."
         )
         key = (brand, source, cid)
@@ -176,6 +195,7 @@ def _source_gap_findings(tables, fdr: float) -> list[dict]:
     if t is None or not len(t) or not need <= set(t.columns):
         return []
     out = []
+    weak = _weak_names(tables)
     for rec in t[t["significant"].fillna(False).astype(bool)].to_dict("records"):
         cid = int(rec["context_id"])
         if cid < 0:
@@ -189,7 +209,7 @@ def _source_gap_findings(tables, fdr: float) -> list[dict]:
         more, less = ("consumer", "owned") if gap > 0 else ("owned", "consumer")
         q = _f(rec.get("q_value"))
         text = (
-            f"{_q(rec.get('context', cid))} is more common in {brand}'s {more} photos than in its {less} photos: "
+            f"{_context_text(rec, weak)} is more common in {brand}'s {more} photos than in its {less} photos: "
             f"consumer {pct(cs, d)}, owned {pct(os_, d)} (difference {points(gap, d)} points, "
             f"95 % CI {points(lo, d)} to {points(hi, d)})."
         )
