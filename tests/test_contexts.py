@@ -691,10 +691,12 @@ PLANTED_KEYWORDS = {
 
 @pytest.mark.slow
 def test_demo_context_names_match_the_planted_ones(demo_contexts):
-    # Zero-shot naming check on the demo: a planted context counts as named when
-    # a found context mapped to it by majority has a name sharing a keyword with
-    # it. Measured with the bundled encoder: 6 of 7 (the night party is named
-    # after sports, its balloons read as balls by the image model); we require 5.
+    # Zero-shot naming check on the demo (end to end, not a target to tune on): a
+    # planted context counts as named when a found context mapped to it by majority
+    # has a model phrase (suggested_name) sharing a keyword with it. Measured with
+    # the bundled encoder and the shipped general vocabulary (not written around
+    # the demo): 4 of 7 (gym, mountain camp, candlelit dinner, office desk); we
+    # require 4, so a regression in naming fails.
     tables, truth_images, _ = demo_contexts
     planted_of = _planted_of(tables, truth_images)
     # the model's chosen phrase (weak names are shown as "context N", checked below)
@@ -708,5 +710,5 @@ def test_demo_context_names_match_the_planted_ones(demo_contexts):
         named |= {planted} if hit else set()
         print(f"  context {cid} '{names[cid]}' -> {planted}: {'keyword match' if hit else 'no keyword'}")
     print(f"  planted contexts named: {len(named)} of {len(PLANTED_KEYWORDS)}: {sorted(named)}")
-    assert len(named) >= 5, f"only {sorted(named)} named after their planted context"
+    assert len(named) >= 4, f"only {sorted(named)} named after their planted context"
     assert len(set(names.values())) == len(names), "context names are not unique"
