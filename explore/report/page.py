@@ -35,6 +35,7 @@ from explore.report.comparison import (
 )
 from explore.report.contexts_section import _contexts_section, _findings_section
 from explore.report.data import OutputFolder
+from explore.report.dropped import dropped_section
 from explore.report.findings import findings_table, study_fdr
 from explore.report.format import (  # noqa: F401
     MAX_HTML_ROWS,
@@ -193,6 +194,20 @@ def build_page(
         large_suffix = "_faces_blurred" if blur_faces else ""
         large_cache = cache_dir / f"thumbnails_{LARGE_PX}{large_suffix}_webp.parquet" if cache_dir else None
         large = thumbnails_for(usable, large_ids, LARGE_PX, large_cache, blur_faces=blur_faces)
+
+    # Photos left out or flagged (reposts, near-duplicates, commercial posts): a few examples each.
+    dropped = dropped_section(images_all, run.get("settings") or {})
+    # Their thumbnails sit in the section itself (same cache, faces blurred the same way), not in the map's set.
+    dropped_thumbs = {i: thumbs[i] for i in dropped["example_ids"] if i in thumbs}
+    dropped_ids = [i for i in dropped["example_ids"] if i not in thumbs]
+    if dropped_ids and "path" in images_all:
+        suffix = "_faces_blurred" if blur_faces else ""
+        cache_file = cache_dir / f"thumbnails_{thumbnail_px}{suffix}_webp.parquet" if cache_dir else None
+        dropped_thumbs.update(thumbnails_for(images_all, dropped_ids, thumbnail_px, cache_file, blur_faces=blur_faces))
+    for kind in dropped["kinds"]:
+        for ex in kind["examples"]:
+            b64 = dropped_thumbs.get(ex["image_id"])
+            ex["thumb"] = f"data:{MIME};base64,{b64}" if b64 else ""
 
     # ---- per-point payload (columnar: compact and fast to read in the page)
     brand_ix = {b: i for i, b in enumerate(brands)}
@@ -362,6 +377,7 @@ def build_page(
     variables = dict(
         study=run.get("study") or out.folder.name,
         overview=overview,
+        dropped=dropped,
         findings=findings_section,
         brands=brands,
         categories=categories,
