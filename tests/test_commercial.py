@@ -105,3 +105,22 @@ def test_study_key_validated(tmp_path):
         else:
             with pytest.raises(StudyError, match="images.commercial_posts"):
                 load_study(path)
+
+
+def test_labels_on_dropped_rows_remap_or_are_left_out_with_a_reason():
+    from explore import attributes as A
+
+    images = pd.DataFrame({
+        "image_id": ["keep1", "near1", "shop1", "rep1", "own1"],
+        "path": [f"/x/{i}.jpg" for i in range(5)],
+        "relpath": [f"B/consumer/{i}.jpg" for i in range(5)],
+        "status": ["ok", "near_duplicate", "commercial", "repost", "ok"],
+        "near_duplicate_of": ["", "keep1", "", "", ""],
+        "repost_of": ["", "", "", "own1", ""],
+    })
+    table = pd.DataFrame({"image": ["near1", "shop1", "rep1"], "attribute": ["sunny"] * 3, "label": [1, 0, 1]})
+    labels, warnings = A.read_labels(table, images, ["sunny"], where="labels.csv")
+    # the near-duplicate's label goes to its kept representative; the others are not used
+    assert labels.image_id.tolist() == ["keep1"] and labels.label.tolist() == [1]
+    assert any("row 3" in w and "commercial post" in w and "not used for corrected shares" in w for w in warnings)
+    assert any("row 4" in w and "repost" in w and "not used for corrected shares" in w for w in warnings)
