@@ -16,7 +16,7 @@ KINDS = (
      "images.commercial_posts"),
 )
 #: Example pictures per kind.
-EXAMPLES = 8
+EXAMPLES = 6
 
 
 def _flagged_kept(images: pd.DataFrame, kind: str) -> pd.Series:
