@@ -135,6 +135,14 @@ def skip_changed(images: pd.DataFrame, skipped: dict) -> pd.DataFrame:
     return images
 
 
+def _commercial_constants() -> dict:
+    """The commercial-post flag's fixed constants, for run.json (the study key is under settings.images)."""
+    from explore import commercial
+
+    return {k: getattr(commercial, k) for k in ("THRESHOLD", "COEF_PLAIN", "COEF_MARGIN", "INTERCEPT", "TOLERANCE",
+                                                 "BORDER", "COMMERCIAL_PROMPTS", "PHOTO_PROMPTS")}
+
+
 def probe_writable(folder: Path) -> None:
     """Write, fsync and remove a real file in ``folder``: the OSError names the folder's problem."""
     folder.mkdir(parents=True, exist_ok=True)
@@ -256,6 +264,17 @@ def _run_stages(
             images, embeddings, exclude=getattr(study.images, "near_duplicates", "exclude") == "exclude"
         )
         summary.notes += near_notes
+
+    with timer("commercial posts"):
+        from explore import commercial
+
+        images, embeddings, commercial_notes = commercial.flag_commercial(
+            images, embeddings, encoder.encode_texts, mode=getattr(study.images, "commercial_posts", "exclude"),
+            log=log,
+        )
+        summary.notes += commercial_notes
+        for note in commercial_notes:
+            log(note)
         summary.images_used = int((images["status"] == "ok").sum())
         summary.images_skipped = summary.images_found - summary.images_used
         write_tables(out, {"images": images, "skipped": collect.skipped_files(images)})
@@ -365,6 +384,7 @@ def _run_stages(
         },
         "stage_seconds": summary.stage_seconds,
         "settings": _jsonable(asdict(study)),
+        "commercial_flag": _commercial_constants(),
         "tables": summary.tables,
         "notes": summary.notes,
     }

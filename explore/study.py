@@ -45,6 +45,10 @@ class ImagesSettings:
         (confirmed by the image vectors, ``explore/duplicates.py``): ``exclude``
         (default: counted once, later copies get status ``near_duplicate``) or
         ``keep`` (flag only).
+    commercial_posts: a consumer photo that looks like a shop listing, product
+        shot, screenshot or advert (``explore/commercial.py``): ``exclude``
+        (default: status ``commercial``, left out of the consumer shares) or
+        ``keep`` (flagged, counted). Owned photos are never flagged.
     """
 
     root: Path | None = None
@@ -53,6 +57,7 @@ class ImagesSettings:
     max_per_poster: int = 0
     reposts: str = "exclude"
     near_duplicates: str = "exclude"
+    commercial_posts: str = "exclude"
 
 
 @dataclass
@@ -316,6 +321,10 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
     if images.near_duplicates not in ("exclude", "keep"):
         raise StudyError(
             f"{where}: key 'images.near_duplicates' is '{images.near_duplicates}'; expected 'exclude' or 'keep'"
+        )
+    if images.commercial_posts not in ("exclude", "keep"):
+        raise StudyError(
+            f"{where}: key 'images.commercial_posts' is '{images.commercial_posts}'; expected 'exclude' or 'keep'"
         )
 
     brands_raw = raw.get("brands", {})

@@ -68,6 +68,13 @@ def parse_labels_text(text: str, where: str = "labels") -> pd.DataFrame:
     return table
 
 
+#: Statuses whose labels are dropped with their own sentence (rather than remapped to a kept image).
+LEFT_OUT = {
+    "commercial": "was left out as a commercial post (images.commercial_posts = 'exclude')",
+    "repost": "is a repost of the brand's own photo, left out of consumer shares (images.reposts = 'exclude')",
+}
+
+
 def read_labels(
     table: pd.DataFrame,
     images: pd.DataFrame,
@@ -109,6 +116,11 @@ def read_labels(
     kept = (
         dict(zip(images["image_id"].astype(str), images["duplicate_of"].fillna("").astype(str)))
         if "duplicate_of" in images.columns
+        else {}
+    )
+    near = (
+        dict(zip(images["image_id"].astype(str), images["near_duplicate_of"].fillna("").astype(str)))
+        if "near_duplicate_of" in images.columns
         else {}
     )
     has_design = "sample" in table.columns
@@ -161,6 +173,14 @@ def read_labels(
             continue
         if status.get(image_id) == "duplicate" and status.get(kept.get(image_id, "")) == "ok":
             image_id = kept[image_id]  # same content as a kept image: the label applies to it
+        if status.get(image_id) == "near_duplicate" and status.get(near.get(image_id, "")) == "ok":
+            image_id = near[image_id]  # near-identical, same brand and source: the label applies to the kept one
+        if status.get(image_id) in LEFT_OUT:
+            warnings.append(
+                f"{where}: row {row_number}: image '{image}' {LEFT_OUT[status[image_id]]}; "
+                "its label is not used for corrected shares (row left out)"
+            )
+            continue
         if status.get(image_id) != "ok":
             warnings.append(
                 f"{where}: row {row_number}: image '{image}' is not usable ({status.get(image_id)}); row left out"

@@ -1,0 +1,95 @@
+"""Precision and recall of the commercial-post flag on an outside labelled set (never the demo).
+
+Set: ``benchmarks/commercial_set.py`` ("outside-commercial-v1"): openclipart-png
+objects on plain colour, PIL-rendered Debian documentation text, openclipart +
+text adverts (positives); crops of scikit-image sample photos and openclipart
+objects pasted into them (negatives). Seeded split into a fit half and a check
+half, stratified by kind.
+
+On the fit half: a logistic regression (scikit-learn) over the two signals of
+``explore/commercial.py`` (plain border share, prompt margin) gives the
+coefficients; ``--fit`` prints them (copy them into explore/commercial.py).
+On the check half: precision, recall (scikit-learn ``precision_score``,
+``recall_score``) and ROC AUC of the shipped constants, per signal and combined,
+and recall per kind.
+
+Encoders: ``bundled`` always; ``clip`` only when its weights are local (not on
+the build machine: the row says so).
+
+    .venv/bin/python benchmarks/commercial_flag.py [--fit] [--n 24]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+import commercial_set  # noqa: E402
+
+from explore import commercial  # noqa: E402
+
+
+def joint_vectors(encoder, images) -> np.ndarray:
+    import torch
+
+    out = []
+    for k in range(0, len(images), 32):
+        batch = torch.stack([encoder.preprocess(im.convert("RGB")) for im in images[k:k + 32]])
+        with torch.inference_mode():
+            out.append(encoder.encode_images(batch)["joint"])
+    return np.concatenate(out)
+
+
+def main(argv=None) -> int:
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.metrics import precision_score, recall_score, roc_auc_score
+
+    from explore.encoders import EncoderUnavailable, load_encoder
+
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--fit", action="store_true", help="print the logistic coefficients fitted on the fit half")
+    ap.add_argument("--n", type=int, default=24, help="images per kind (five kinds)")
+    args = ap.parse_args(argv)
+
+    images, labels, kinds = commercial_set.build(args.n)
+    fit, check = commercial_set.halves(kinds)
+    kinds = np.asarray(kinds)
+    plain = np.array([commercial.plain_border_share(im) for im in images])
+    print(f"set: {commercial_set.NAME}, {len(labels)} images ({int(labels.sum())} commercial), "
+          f"fit half {int(fit.sum())}, check half {int(check.sum())}")
+    os.environ.setdefault("HF_HUB_OFFLINE", "1")  # clip: local weights only, never a download here
+    for name in ("bundled", "clip"):
+        try:
+            encoder, _ = load_encoder(name)
+        except EncoderUnavailable as exc:
+            print(f"{name}: not measured ({type(exc).__name__}: {str(exc).splitlines()[0][:160]})")
+            continue
+        margin = commercial.prompt_margin(joint_vectors(encoder, images), encoder.encode_texts)
+        if args.fit:
+            x = np.c_[plain, margin]
+            model = LogisticRegression(C=1000.0).fit(x[fit], labels[fit])
+            print(f"{name} fit half: COEF_PLAIN = {model.coef_[0][0]:.2f}, COEF_MARGIN = {model.coef_[0][1]:.2f}, "
+                  f"INTERCEPT = {model.intercept_[0]:.2f}")
+        score = commercial.commercial_score(plain, margin)
+        flagged = score >= commercial.THRESHOLD
+        y = labels[check]
+        print(f"{name} ({encoder.id}) check half, shipped constants, threshold {commercial.THRESHOLD}:")
+        print(f"  combined: precision {precision_score(y, flagged[check]):.3f}, "
+              f"recall {recall_score(y, flagged[check]):.3f}, AUC {roc_auc_score(y, score[check]):.3f}")
+        print(f"  plain border share alone: AUC {roc_auc_score(y, plain[check]):.3f}; "
+              f"prompt margin alone: AUC {roc_auc_score(y, margin[check]):.3f}")
+        for kind in dict.fromkeys(kinds):
+            m = check & (kinds == kind)
+            print(f"  {kind}: {int(flagged[m].sum())} of {int(m.sum())} flagged")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
