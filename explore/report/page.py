@@ -220,9 +220,18 @@ def _setting_text(value) -> str:
 # Building the page
 
 
+def blurred_suffix(blur_faces: bool) -> str:
+    """Thumbnail cache file suffix: names the face detector, so a new detector never reuses old blurring."""
+    if not blur_faces:
+        return ""
+    from explore.report.faces import detector_id
+
+    return "_faces_" + detector_id().replace(".", "-")
+
+
 def faces_sentence(blur_faces: bool, face_counts: dict[str, int], n_thumbs: int) -> str:
     """What the report did about faces, in one sentence for the privacy card."""
-    from explore.report.faces import DETECTOR
+    from explore.report.faces import detector_description
 
     if not blur_faces:
         return (
@@ -233,7 +242,7 @@ def faces_sentence(blur_faces: bool, face_counts: dict[str, int], n_thumbs: int)
     pictures = sum(1 for v in face_counts.values() if v)
     return (
         f"Faces are blurred where detected: {faces:,} face(s) in {pictures:,} of {n_thumbs:,} thumbnails "
-        f"({DETECTOR}). The detector misses some faces (small, turned, covered), so the caution above "
+        f"({detector_description()}). The detector misses some faces (small, turned, covered), so the caution above "
         "still applies. Blurring is for this file only: the analysis used the original photos."
     )
 
@@ -342,7 +351,7 @@ def build_page(
     thumbs: dict[str, str] = {}
     face_counts: dict[str, int] = {}
     if choice.ids and "path" in usable:
-        suffix = "_faces_blurred" if blur_faces else ""
+        suffix = blurred_suffix(blur_faces)
         cache_file = cache_dir / f"thumbnails_{thumbnail_px}{suffix}_webp.parquet" if cache_dir else None
         thumbs = thumbnails_for(
             usable, choice.ids, thumbnail_px, cache_file, blur_faces=blur_faces, face_counts=face_counts
@@ -358,7 +367,7 @@ def build_page(
     large: dict[str, str] = {}
     large_ids = [i for i in dict.fromkeys(exemplar_ids) if i in thumbs]
     if large_ids and "path" in usable:
-        large_suffix = "_faces_blurred" if blur_faces else ""
+        large_suffix = blurred_suffix(blur_faces)
         large_cache = cache_dir / f"thumbnails_{LARGE_PX}{large_suffix}_webp.parquet" if cache_dir else None
         large = thumbnails_for(usable, large_ids, LARGE_PX, large_cache, blur_faces=blur_faces)
 
