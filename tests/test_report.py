@@ -236,7 +236,11 @@ def test_not_an_output_folder(tmp_path):
 def test_thumbnail_cache_makes_rebuilds_reuse_thumbnails(tmp_path):
     out = synth.make_output_folder(tmp_path, 20)
     first = _embedded(write_report(out).read_text(encoding="utf-8"), "explore-thumbs")
-    cache = out / "cache" / "thumbnails_96_faces_blurred_webp.parquet"  # faces blurred by default
+    from explore.report.page import blurred_suffix
+
+    # Faces blurred by default; the file names the detector (a new one never reuses old blurring).
+    cache = out / "cache" / f"thumbnails_96{blurred_suffix(True)}_webp.parquet"
+    assert "_faces_" in cache.name
     assert cache.is_file() and len(pd.read_parquet(cache)) == 20
     # Remove the photos: a rebuild still has every thumbnail, from the cache.
     for p in pd.read_parquet(out / "images.parquet")["path"]:

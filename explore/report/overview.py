@@ -74,7 +74,7 @@ def _setting_text(value) -> str:
 
 def faces_sentence(blur_faces: bool, face_counts: dict[str, int], n_thumbs: int) -> str:
     """What the report did about faces, in one sentence for the privacy card."""
-    from explore.report.faces import DETECTOR
+    from explore.report.faces import detector_description
 
     if not blur_faces:
         return (
@@ -85,7 +85,7 @@ def faces_sentence(blur_faces: bool, face_counts: dict[str, int], n_thumbs: int)
     pictures = sum(1 for v in face_counts.values() if v)
     return (
         f"Faces are blurred where detected: {faces:,} face(s) in {pictures:,} of {n_thumbs:,} thumbnails "
-        f"({DETECTOR}). The detector misses some faces (small, turned, covered), so the caution above "
+        f"({detector_description()}). The detector misses some faces (small, turned, covered), so the caution above "
         "still applies. Blurring is for this file only: the analysis used the original photos."
     )
 

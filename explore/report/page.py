@@ -71,6 +71,15 @@ LARGE_PX = 360
 # Building the page
 
 
+def blurred_suffix(blur_faces: bool) -> str:
+    """Thumbnail cache file suffix: names the face detector, so a new detector never reuses old blurring."""
+    if not blur_faces:
+        return ""
+    from explore.report.faces import detector_id
+
+    return "_faces_" + detector_id().replace(".", "-")
+
+
 def build_page(
     out: OutputFolder,
     *,
@@ -175,7 +184,7 @@ def build_page(
     thumbs: dict[str, str] = {}
     face_counts: dict[str, int] = {}
     if choice.ids and "path" in usable:
-        suffix = "_faces_blurred" if blur_faces else ""
+        suffix = blurred_suffix(blur_faces)
         cache_file = cache_dir / f"thumbnails_{thumbnail_px}{suffix}_webp.parquet" if cache_dir else None
         thumbs = thumbnails_for(
             usable, choice.ids, thumbnail_px, cache_file, blur_faces=blur_faces, face_counts=face_counts
@@ -191,7 +200,7 @@ def build_page(
     large: dict[str, str] = {}
     large_ids = [i for i in dict.fromkeys(exemplar_ids) if i in thumbs]
     if large_ids and "path" in usable:
-        large_suffix = "_faces_blurred" if blur_faces else ""
+        large_suffix = blurred_suffix(blur_faces)
         large_cache = cache_dir / f"thumbnails_{LARGE_PX}{large_suffix}_webp.parquet" if cache_dir else None
         large = thumbnails_for(usable, large_ids, LARGE_PX, large_cache, blur_faces=blur_faces)
 
@@ -201,7 +210,7 @@ def build_page(
     dropped_thumbs = {i: thumbs[i] for i in dropped["example_ids"] if i in thumbs}
     dropped_ids = [i for i in dropped["example_ids"] if i not in thumbs]
     if dropped_ids and "path" in images_all:
-        suffix = "_faces_blurred" if blur_faces else ""
+        suffix = blurred_suffix(blur_faces)
         cache_file = cache_dir / f"thumbnails_{thumbnail_px}{suffix}_webp.parquet" if cache_dir else None
         dropped_thumbs.update(thumbnails_for(images_all, dropped_ids, thumbnail_px, cache_file, blur_faces=blur_faces))
     for kind in dropped["kinds"]:
