@@ -229,3 +229,30 @@ def test_study_file_edits_parse(tmp_path):
     e = study.contexts.edits
     assert [(x.image, x.name) for x in e[:1]] == [("Alba/consumer/p1.jpg", "breakfast at home")]
     assert (e[1].context, e[1].merge_into, e[2].drop, e[2].position) == (4, 2, True, 3)
+
+
+def test_demo_report_and_tables_show_weak_names_as_numbers(demo_run):
+    """End to end on the demo run: every weak context is 'context N' in contexts.csv,
+    image_contexts.csv and the findings, and its card in the report says it has no
+    confident name and lists the candidates."""
+    cx = pd.read_csv(demo_run / "contexts.csv", keep_default_na=False)
+    weak = cx[cx.name_source == "zero-shot, weak"]
+    strong = cx[cx.name_source == "zero-shot"]
+    assert len(strong) >= 1
+    html = (demo_run / "report.html").read_text(encoding="utf-8")
+    ic = pd.read_csv(demo_run / "image_contexts.csv", keep_default_na=False)
+    for r in weak.itertuples():
+        assert r.context == f"context {r.context_id}"
+        assert set(ic.loc[ic.context_id == r.context_id, "context"]) == {r.context}
+        assert r.candidates.replace(" | ", ", ") in html
+    for r in strong.itertuples():
+        assert r.context == r.suggested_name and float(r.name_confidence) >= WEAK_BELOW
+    if len(weak):
+        assert html.count("no confident name") >= len(weak)
+    findings = pd.read_csv(demo_run / "findings.csv", keep_default_na=False)
+    named_weak = set(weak.context)
+    assert "sentence" in findings.columns
+    for text in findings["sentence"].astype(str):
+        for name in named_weak:
+            if f"“{name}”" in text:
+                assert "no confident name" in text

@@ -71,6 +71,24 @@ LARGE_PX = 360
 # Building the page
 
 
+def context_name_note(rec: dict) -> str:
+    """One line under a context's name: how sure the name is, or that the analyst chose it."""
+    source = str(rec.get("name_source") or "")
+    conf = rec.get("name_confidence")
+    candidates = str(rec.get("candidates") or "") if pd.notna(rec.get("candidates")) else ""
+    if source == "analyst":
+        suggested = str(rec.get("suggested_name") or "") if pd.notna(rec.get("suggested_name")) else ""
+        return "named by the analyst (study file)" + (f"; the model suggested “{suggested}”" if suggested else "")
+    if source == "zero-shot, weak":
+        return (f"no confident name: the model's best phrase held in {float(conf):.0%} of bootstrap resamples of "
+                f"these photos (a name needs 80 %); candidates: {candidates.replace(' | ', ', ')}")
+    if source == "zero-shot" and conf is not None and pd.notna(conf):
+        runner = str(rec.get("runner_up") or "") if pd.notna(rec.get("runner_up")) else ""
+        return (f"name held in {float(conf):.0%} of bootstrap resamples of these photos"
+                + (f" (runner-up: “{runner}”)" if runner else ""))
+    return ""
+
+
 def blurred_suffix(blur_faces: bool) -> str:
     """Thumbnail cache file suffix: names the face detector, so a new detector never reuses old blurring."""
     if not blur_faces:
@@ -141,6 +159,7 @@ def build_page(
                 "alternatives": str(rec.get("alternatives") or "") if pd.notna(rec.get("alternatives")) else "",
                 "exemplars": str(rec.get("exemplars") or "").split(),
                 "color": colour,
+                "name_note": context_name_note(rec),
             })
     elif has_map:
         ids = sorted(int(c) for c in image_contexts["context_id"].unique() if c >= 0)
