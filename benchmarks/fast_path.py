@@ -109,6 +109,28 @@ def cosines(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return (a.astype(np.float64) * b.astype(np.float64)).sum(axis=1)
 
 
+def end_to_end(exact, offered, workdir: Path, args) -> None:
+    """img/s of ``embed_table`` (decode, preprocess, model; embed's own streams) for exact and the
+    offered encoder, alternating, best of the rounds; a fresh cache each pass."""
+    from benchmarks.embed_throughput import make_photos
+    from explore.collect import collect_images
+    from explore.embed import embed_table
+
+    make_photos(workdir / "photos", args.end_to_end)
+    table = collect_images(workdir / "photos", progress=False)
+    best = {"exact": 0.0, "onnxruntime": 0.0}
+    for rnd in range(args.rounds):
+        for name, encoder in (("exact", exact), ("onnxruntime", offered)):
+            t0 = time.perf_counter()
+            embed_table(table, encoder, workdir / f"cache-{name}-{rnd}", batch_size=args.batch, progress=False)
+            best[name] = max(best[name], args.end_to_end / (time.perf_counter() - t0))
+    print(
+        f"end to end (embed_table, {args.end_to_end} JPEGs 1600x1200, batch {args.batch}, best of {args.rounds}): "
+        f"exact {best['exact']:.1f} img/s, onnxruntime {best['onnxruntime']:.1f} img/s, "
+        f"x{best['onnxruntime'] / best['exact']:.2f} (load {loadavg()})"
+    )
+
+
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--families", nargs="*", default=["clip", "bundled"])
@@ -117,6 +139,9 @@ def main(argv=None) -> int:
     parser.add_argument("--rounds", type=int, default=3)
     parser.add_argument("--repeats", type=int, default=3, help="batches per timed pass")
     parser.add_argument("--threads", type=int, default=os.cpu_count() or 1)
+    parser.add_argument("--end-to-end", type=int, default=48, metavar="N",
+                        help="also time exact vs the offered onnxruntime encoder end to end (embed_table: "
+                        "JPEG decoding, preprocessing, model) on N generated phone-size JPEGs (0: skip)")
     args = parser.parse_args(argv)
 
     import torch
@@ -182,6 +207,8 @@ def main(argv=None) -> int:
                 worst = int(np.argmin(np.minimum(c, j)))
                 if name != "exact":
                     summary.append((family, name, ratio, float(min(c.min(), j.min())), images[worst][0]))
+            if onnxruntime is not None and args.end_to_end:
+                end_to_end(encoder, fast.OnnxRuntimeEncoder(encoder), tmp / f"e2e-{family}", args)
             print()
     print(f"load average after: {loadavg()}")
     print(f"\nverdict (offer only where faster than exact and min cosine >= {fast.MIN_COSINE}):")

@@ -34,8 +34,9 @@ def _add_encoder_options(p: argparse.ArgumentParser) -> None:
     p.add_argument(
         "--runtime",
         choices=["torch", "onnxruntime"],
-        help="what runs the image tower: torch (exact, the default) or onnxruntime (faster here, "
-        "cosine >= 0.999 with torch, its own encoder id; pip install \"explore[fast]\"). "
+        help="what runs the image tower: torch (exact, the default) or onnxruntime (bundled encoder "
+        "only: x1.2 end to end here, cosine >= 0.999 with torch, its own encoder id; "
+        "pip install \"explore[fast]\"). "
         "Default: the study's [encoder] runtime",
     )
 

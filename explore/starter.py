@@ -5,8 +5,10 @@ A new user points ``explore init`` at a folder laid out as
 sources found there, the default attribute set (the five brand-personality
 dimensions of Aaker, 1997, Journal of Marketing Research, worded as our own
 prompt pairs), encoder ``auto`` and an output folder, so that the next command
-(``explore run STUDY``) already produces results. The file is written as text
-with comments, so the user can see what to change.
+(``explore run STUDY``) already produces results. Every other study key is
+written too, with its default from ``explore.study`` and a short comment
+(``SETTINGS_WRITTEN``; keys that are off or automatic by default are written
+commented out, with an example value), so the user can see what to change.
 """
 
 from __future__ import annotations
@@ -96,7 +98,7 @@ SETTINGS_WRITTEN: dict[str, dict[str, tuple[str, object]]] = {
         "pretrained": ("open_clip pretrained tag (clip)", None),
         "weights": ("a local open_clip checkpoint file (clip)", "weights.safetensors"),
         "batch_size": ("images per batch", None),
-        "runtime": ("torch (exact) | onnxruntime (faster, own encoder id; pip install \"explore[fast]\")", None),
+        "runtime": ("torch (exact) | onnxruntime (bundled only: faster, own encoder id; pip install \"explore[fast]\")", None),
     },
     "cluster": {
         "address": ("embed on a Ray cluster: auto | HOST:PORT | ray://HOST:10001 | local (default: this machine)", "local"),

@@ -61,9 +61,9 @@ class EncoderSettings:
 
     runtime: what runs the image tower: ``torch`` (default, the exact path) or
         ``onnxruntime`` (the same float32 tower exported to ONNX and run by ONNX
-        Runtime: faster here, cosine >= 0.999 with torch, measured by
-        ``benchmarks/fast_path.py``; its vectors get their own encoder id;
-        ``pip install "explore[fast]"``).
+        Runtime; bundled encoder only, where ``benchmarks/fast_path.py``
+        measured it faster here with cosine >= 0.999 with torch; its vectors
+        get their own encoder id; ``pip install "explore[fast]"``).
     """
 
     name: str = "auto"

@@ -108,9 +108,12 @@ def test_fast_encoder_id_differs_and_cache_entries_do_not_mix(bundled_pair, tmp_
 
 
 def test_missing_onnxruntime_is_named_before_any_model_loads(monkeypatch):
+    import explore.encoders.bundled as bundled
+
     monkeypatch.setitem(sys.modules, "onnxruntime", None)  # import fails as if not installed
+    monkeypatch.setattr(bundled, "BundledEncoder", None)  # building the model would fail differently
     with pytest.raises(EncoderUnavailable, match=r"explore\[fast\]"):
-        load_encoder("clip", model="ViT-B-32", weights="/nonexistent.pt", runtime="onnxruntime")
+        load_encoder("bundled", runtime="onnxruntime")
 
 
 def test_unknown_runtime_refused_in_study(tmp_path):
@@ -123,24 +126,7 @@ def test_unknown_runtime_refused_in_study(tmp_path):
         load_study(path)
 
 
-def test_clip_tower_fast_vectors_within_bound(tmp_path):
-    """The clip wiring (open_clip's visual tower, normalised embedding), on a small random-weights
-    ViT through the real loading path; the real default model is measured by benchmarks/fast_path.py."""
-    import open_clip
-    import torch
-
-    torch.manual_seed(0)
-    model, _, _ = open_clip.create_model_and_transforms("ViT-S-32", pretrained=None)
-    weights = tmp_path / "vit-s-32.pt"
-    torch.save(model.state_dict(), weights)
-    exact, _ = load_encoder("clip", model="ViT-S-32", weights=weights)
-    fast, _ = load_encoder("clip", model="ViT-S-32", weights=weights, runtime="onnxruntime")
-    assert fast.id == exact.id + "-onnxruntime"
-    images = outside_images()[:4]
-    batch = torch.stack([exact.preprocess(im) for im in images])
-    want = exact.encode_images(batch)["joint"]
-    got = fast.encode_images(batch)
-    assert got["cluster"] is got["joint"] or np.array_equal(got["cluster"], got["joint"])
-    assert _cosines(got["joint"], want).min() >= MIN_COSINE
-    tokens = fast.encode_texts(["a photo of a cat"])
-    np.testing.assert_array_equal(tokens, exact.encode_texts(["a photo of a cat"]))
+def test_clip_is_refused_where_not_measured_faster():
+    # benchmarks/fast_path.py: onnxruntime x0.82 of exact end to end for the default clip model here
+    with pytest.raises(EncoderUnavailable, match="not offered for the clip encoder"):
+        load_encoder("clip", model="ViT-B-32", weights="/nonexistent.pt", runtime="onnxruntime")

@@ -53,7 +53,8 @@ def load_encoder(
     progress : stream for the download progress bar of ``auto`` (None: none).
     runtime : "torch" (the exact path) or "onnxruntime": the image tower run by
         ONNX Runtime (``fast.OnnxRuntimeEncoder``, its own encoder id; needs the
-        ``fast`` extra, checked before any model is loaded).
+        ``fast`` extra, checked before any model is loaded). Offered for
+        ``bundled`` only (``fast.OFFERED_FAMILIES``: measured faster end to end).
 
     Returns
     -------
@@ -67,6 +68,8 @@ def load_encoder(
         if runtime not in fast.RUNTIMES:
             raise EncoderUnavailable(f"unknown encoder runtime '{runtime}'; expected one of {', '.join(fast.RUNTIMES)}")
         fast._require_onnxruntime()  # say what is missing before loading any model
+        if (name or "auto").strip().lower() == "clip":
+            raise EncoderUnavailable(fast.NOT_OFFERED)
         encoder, notice = load_encoder(name, model=model, pretrained=pretrained, weights=weights, progress=progress)
         return fast.with_runtime(encoder, runtime), notice
     name = (name or "auto").strip().lower()

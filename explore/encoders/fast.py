@@ -91,10 +91,21 @@ def quantize_linear_int8(tower):
 
 def export_onnx(tower, path: Path, output_names: list[str], input_size: int) -> Path:
     """Export a tower to ONNX with ``torch.onnx.export`` (dynamic batch size)."""
+    import warnings
+
     import torch
 
     example = torch.zeros(2, 3, input_size, input_size)
     axes = {"pixels": {0: "batch"}, **{name: {0: "batch"} for name in output_names}}
+    with warnings.catch_warnings():  # the tracer's notes on constant shapes are noise for the user
+        warnings.simplefilter("ignore")
+        _export(tower, example, path, output_names, axes)
+    return Path(path)
+
+
+def _export(tower, example, path, output_names, axes) -> None:
+    import torch
+
     torch.onnx.export(
         tower.eval(),
         (example,),
@@ -105,7 +116,6 @@ def export_onnx(tower, path: Path, output_names: list[str], input_size: int) -> 
         opset_version=17,
         dynamo=False,
     )
-    return Path(path)
 
 
 def quantize_onnx_int8(source: Path, target: Path) -> Path:
@@ -142,6 +152,14 @@ def onnx_runner(path: Path, threads: int):
 
 #: The runtimes an encoder's image tower can run on (``[encoder] runtime``, ``--runtime``).
 RUNTIMES = ("torch", "onnxruntime")
+#: Families the onnxruntime path is offered for: where benchmarks/fast_path.py measured it
+#: faster than exact end to end here (bundled x1.20; clip x0.82, so not offered).
+OFFERED_FAMILIES = ("bundled",)
+NOT_OFFERED = (
+    "encoder runtime 'onnxruntime' is not offered for the clip encoder: benchmarks/fast_path.py "
+    "measured it slower than the exact torch path end to end here (x0.82 through embed's streams); "
+    "use runtime 'torch' (or --encoder bundled with --runtime onnxruntime)"
+)
 #: Bump when the export or the ONNX Runtime settings change the vectors.
 ONNX_VERSION = 1
 INSTALL_HINT = 'pip install "explore[fast]" (or: pip install onnxruntime onnx)'
@@ -265,4 +283,6 @@ def with_runtime(encoder, runtime: str):
         raise EncoderUnavailable(f"unknown encoder runtime '{runtime}'; expected one of {', '.join(RUNTIMES)}")
     if runtime == "torch":
         return encoder
+    if encoder.family not in OFFERED_FAMILIES:
+        raise EncoderUnavailable(NOT_OFFERED)
     return OnnxRuntimeEncoder(encoder)
