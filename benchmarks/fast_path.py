@@ -124,11 +124,13 @@ def end_to_end(exact, offered, workdir: Path, args) -> None:
             t0 = time.perf_counter()
             embed_table(table, encoder, workdir / f"cache-{name}-{rnd}", batch_size=args.batch, progress=False)
             best[name] = max(best[name], args.end_to_end / (time.perf_counter() - t0))
+    best["ratio"] = best["onnxruntime"] / best["exact"]
     print(
         f"end to end (embed_table, {args.end_to_end} JPEGs 1600x1200, batch {args.batch}, best of {args.rounds}): "
         f"exact {best['exact']:.1f} img/s, onnxruntime {best['onnxruntime']:.1f} img/s, "
         f"x{best['onnxruntime'] / best['exact']:.2f} (load {loadavg()})"
     )
+    return best["ratio"]
 
 
 def main(argv=None) -> int:
@@ -161,7 +163,7 @@ def main(argv=None) -> int:
     images = outside_images(args.per_topic)
     print(f"{len(images)} outside images (openclipart-png on white + scikit-image samples)")
 
-    summary = []
+    summary, e2e = [], {}
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         for family in args.families:
@@ -208,13 +210,17 @@ def main(argv=None) -> int:
                 if name != "exact":
                     summary.append((family, name, ratio, float(min(c.min(), j.min())), images[worst][0]))
             if onnxruntime is not None and args.end_to_end:
-                end_to_end(encoder, fast.OnnxRuntimeEncoder(encoder), tmp / f"e2e-{family}", args)
+                e2e[family] = end_to_end(encoder, fast.OnnxRuntimeEncoder(encoder), tmp / f"e2e-{family}", args)
             print()
     print(f"load average after: {loadavg()}")
-    print(f"\nverdict (offer only where faster than exact and min cosine >= {fast.MIN_COSINE}):")
+    print(f"\nverdict (offer only where faster than exact and min cosine >= {fast.MIN_COSINE}; the end-to-end "
+          "ratio decides where measured; clip cosines come from random weights):")
     for family, name, ratio, low, worst in summary:
-        ok = ratio > 1.0 and low >= fast.MIN_COSINE
-        print(f"  {family:<8} {name:<18} x{ratio:5.2f}  min cosine {low:.5f} (worst: {worst})  -> {'meets both' if ok else 'not offered'}")
+        speed = e2e[family] if name == "onnxruntime" and family in e2e else ratio
+        ok = speed > 1.0 and low >= fast.MIN_COSINE
+        where = "end to end" if speed is not ratio else "tower"
+        print(f"  {family:<8} {name:<18} x{speed:5.2f} ({where})  min cosine {low:.5f} (worst: {worst})  "
+              f"-> {'meets both' if ok else 'fails'}")
     return 0
 
 
