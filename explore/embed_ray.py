@@ -58,6 +58,7 @@ class EncoderSpec:
     model: str | None = None
     pretrained: str | None = None
     weights: str | None = None
+    runtime: str = "torch"
 
     @classmethod
     def of(cls, encoder) -> "EncoderSpec":
@@ -68,12 +69,15 @@ class EncoderSpec:
             model=getattr(encoder, "model_name", None),
             pretrained=getattr(encoder, "pretrained", None),
             weights=str(weights) if weights else None,
+            runtime=getattr(encoder, "runtime", "torch"),
         )
 
     def load(self):
         from explore.encoders import load_encoder
 
-        encoder, _ = load_encoder(self.name, model=self.model, pretrained=self.pretrained, weights=self.weights)
+        encoder, _ = load_encoder(
+            self.name, model=self.model, pretrained=self.pretrained, weights=self.weights, runtime=self.runtime
+        )
         return encoder
 
 

@@ -65,6 +65,7 @@ def study_encoder(study: Study, encoder_name: str | None = None, weights: Path |
         model=settings.model,
         pretrained=settings.pretrained,
         weights=weights or settings.weights,
+        runtime=settings.runtime,
     )
 
 

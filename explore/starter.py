@@ -5,8 +5,10 @@ A new user points ``explore init`` at a folder laid out as
 sources found there, the default attribute set (the five brand-personality
 dimensions of Aaker, 1997, Journal of Marketing Research, worded as our own
 prompt pairs), encoder ``auto`` and an output folder, so that the next command
-(``explore run STUDY``) already produces results. The file is written as text
-with comments, so the user can see what to change.
+(``explore run STUDY``) already produces results. Every other study key is
+written too, with its default from ``explore.study`` and a short comment
+(``SETTINGS_WRITTEN``; keys that are off or automatic by default are written
+commented out, with an example value), so the user can see what to change.
 """
 
 from __future__ import annotations
@@ -76,6 +78,99 @@ def _toml_key(key: str) -> str:
     return key if bare else _toml_string(key)
 
 
+#: Every study key ``explore init`` writes after the ones it fills in itself
+#: (name, output, seed, images.root, brands, attributes): section -> key ->
+#: (comment, example). With an example the key is written commented out (its
+#: default is "off" or automatic, which TOML cannot spell), else with its
+#: default from ``explore.study``. tests/test_starter.py checks that every key
+#: the study loader knows is here.
+SETTINGS_WRITTEN: dict[str, dict[str, tuple[str, object]]] = {
+    "images": {
+        "manifest": ("manifest CSV instead of the folder tree (path, brand, source[, category, posted_at, poster])", "photos.csv"),
+        "metadata": ("folder tree only: a CSV of path, poster, posted_at and extra columns", "posters.csv"),
+        "max_per_poster": ("at most this many photos per poster per brand x source (0 = no cap)", None),
+        "reposts": ("a brand's own photo re-posted in its consumer set: exclude from consumer shares, or keep", None),
+        "near_duplicates": ("near-identical pictures within a brand and source count once (exclude) or keep", None),
+    },
+    "encoder": {
+        "name": ("auto (clip when its weights are here or can be downloaded, else bundled) | bundled | clip", None),
+        "model": ("open_clip model name (clip); see `explore encoders`", None),
+        "pretrained": ("open_clip pretrained tag (clip)", None),
+        "weights": ("a local open_clip checkpoint file (clip)", "weights.safetensors"),
+        "batch_size": ("images per batch", None),
+        "runtime": ("torch (exact) | onnxruntime (bundled only: faster, own encoder id; pip install \"explore[fast]\")", None),
+    },
+    "cluster": {
+        "address": ("embed on a Ray cluster: auto | HOST:PORT | ray://HOST:10001 | local (default: this machine)", "local"),
+        "workers": ("Ray embedding workers (0 = one per CPU of the cluster)", None),
+        "transfer": ("auto | path (a folder every node mounts) | bytes (the driver sends the files)", None),
+    },
+    "scoring": {
+        "templates": ("how each description becomes prompts; {} is the description", None),
+        "threshold": ("probability at which an image counts as positive", None),
+        "bootstrap_samples": ("resamples for intervals of mean probabilities", None),
+    },
+    "contexts": {
+        "min_cluster_size": ("default: automatic, 0.5 % of the images, between 20 and 500", 25),
+        "min_samples": ("HDBSCAN min_samples; default: automatic", 10),
+        "neighbours": ("UMAP neighbours; default: automatic, sqrt(n)/2 between 30 and 50", 30),
+        "cluster_selection": ("HDBSCAN cluster selection: leaf (finer) or eom", None),
+        "cluster_dimensions": ("UMAP dimensions used for clustering", None),
+        "fit_sample": ("above this many images, UMAP and HDBSCAN are fitted on a seeded sample", None),
+        "vocabulary": ("file of context phrases, one a line (default: the shipped list)", "phrases.txt"),
+        "extra_phrases": ("phrases added to the vocabulary", None),
+        "replace_vocabulary": ("true: name contexts from vocabulary and extra_phrases only", None),
+        "exemplars": ("exemplar images per context", None),
+        "fdr": ("Benjamini-Hochberg false-discovery level", None),
+        "min_index": ("smallest index that counts as over-indexing (100 = parity)", None),
+        "min_count": ("smallest image count behind a finding", None),
+        "rare_category_share": ("a category rarely shows a context below this share", None),
+        "dominance_ratio": ("another category dominates a context at this multiple of the brand's category share", None),
+    },
+    "survey": {
+        "file": ("survey CSV: brand, attribute, score[, category, sample_size]", "survey.csv"),
+    },
+    "labels": {
+        "file": ("hand labels (explore label's export): checks and corrected shares", "labels.csv"),
+    },
+    "report": {
+        "thumbnail_px": ("side of the report's thumbnails, pixels", None),
+        "max_thumbnails": ("beyond this, a seeded sample stratified by brand x source x context, plus all exemplars", None),
+        "blur_faces": ("blur detected faces in the report's pictures (the vectors use the originals)", None),
+    },
+}
+
+
+def _toml_value(value) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float)):
+        return repr(value)
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    return _toml_string(str(value))
+
+
+def _settings_lines(section: str, header: bool = True) -> list[str]:
+    """One section's keys with their defaults (from ``explore.study``) and comments."""
+    from explore import study as study_mod
+
+    defaults = {
+        "images": study_mod.ImagesSettings(), "encoder": study_mod.EncoderSettings(),
+        "cluster": study_mod.ClusterSettings(), "scoring": study_mod.ScoringSettings(),
+        "contexts": study_mod.ContextSettings(), "survey": study_mod.SurveySettings(),
+        "labels": study_mod.LabelsSettings(), "report": study_mod.ReportSettings(),
+    }[section]
+    lines = [f"[{section}]"] if header else []
+    for key, (comment, example) in SETTINGS_WRITTEN[section].items():
+        if example is not None:
+            text = f"# {key} = {_toml_value(example)}"
+        else:
+            text = f"{key} = {_toml_value(getattr(defaults, key))}"
+        lines.append(f"{text:<32} # {comment}" if len(text) < 32 else f"{text}  # {comment}")
+    return lines
+
+
 def starter_study_text(folder: str | Path, study_path: str | Path | None = None) -> str:
     """The text of a starter study file for the photos under ``folder``.
 
@@ -121,6 +216,7 @@ def starter_study_text(folder: str | Path, study_path: str | Path | None = None)
         "",
         "[images]",
         f"root = {_toml_string(root)}",
+        *_settings_lines("images", header=False),
         "",
         "# Each brand's category (brands of one category are compared with each",
         "# other). All brands start in one category; rename categories as needed.",
@@ -134,15 +230,9 @@ def starter_study_text(folder: str | Path, study_path: str | Path | None = None)
             "# Folders without a 'consumer' or 'owned' folder inside (their files are listed as skipped): "
             + ", ".join(printable(b) for b in skipped)
         )
-    lines += [
-        "",
-        "[encoder]",
-        '# "auto" uses CLIP when its weights are on this machine, else the bundled encoder.',
-        'name = "auto"',
-        "",
-        "# Attributes: Aaker's (1997) five brand-personality dimensions, as prompt pairs.",
-    ]
-    for name, positive, negative in DEFAULT_ATTRIBUTES:
+    lines += ["", *_settings_lines("encoder"), "", *_settings_lines("cluster"), "", *_settings_lines("scoring")]
+    lines += ["", "# Attributes: Aaker's (1997) five brand-personality dimensions, as prompt pairs."]
+    for i, (name, positive, negative) in enumerate(DEFAULT_ATTRIBUTES):
         lines += [
             "",
             "[[attribute]]",
@@ -150,6 +240,10 @@ def starter_study_text(folder: str | Path, study_path: str | Path | None = None)
             "positive = [" + ", ".join(_toml_string(t) for t in positive) + "]",
             "negative = [" + ", ".join(_toml_string(t) for t in negative) + "]",
         ]
+        if i == 0:
+            lines.append("# threshold = 0.5                # optional: this attribute's own threshold ([scoring] threshold otherwise)")
+    for section in ("contexts", "survey", "labels", "report"):
+        lines += ["", *_settings_lines(section)]
     return "\n".join(lines) + "\n"
 
 

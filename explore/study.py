@@ -62,13 +62,24 @@ class ImagesSettings:
 
 @dataclass
 class EncoderSettings:
-    """Which encoder turns images and texts into vectors."""
+    """Which encoder turns images and texts into vectors.
+
+    runtime: what runs the image tower: ``torch`` (default, the exact path) or
+        ``onnxruntime`` (the same float32 tower exported to ONNX and run by ONNX
+        Runtime; bundled encoder only, where ``benchmarks/fast_path.py``
+        measured it faster here with cosine >= 0.999 with torch; its vectors
+        get their own encoder id; ``pip install "explore[fast]"``).
+    """
 
     name: str = "auto"
     model: str = DEFAULT_CLIP_MODEL
     pretrained: str = DEFAULT_CLIP_PRETRAINED
     weights: Path | None = None
     batch_size: int = 32
+    runtime: str = "torch"
+
+
+ENCODER_RUNTIMES = ("torch", "onnxruntime")
 
 
 @dataclass
@@ -341,6 +352,10 @@ def study_from_dict(raw: dict[str, Any], path: Path | None = None) -> Study:
         )
     if encoder.batch_size < 1:
         raise StudyError(f"{where}: key 'encoder.batch_size' must be at least 1")
+    if encoder.runtime not in ENCODER_RUNTIMES:
+        raise StudyError(
+            f"{where}: key 'encoder.runtime' is '{encoder.runtime}'; expected one of {', '.join(ENCODER_RUNTIMES)}"
+        )
 
     cluster = _section(raw, "cluster", ClusterSettings, where, base)
     if cluster.workers < 0:

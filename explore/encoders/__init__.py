@@ -30,6 +30,7 @@ def load_encoder(
     pretrained: str | None = None,
     weights: str | Path | None = None,
     progress=sys.stderr,
+    runtime: str = "torch",
 ) -> tuple[Encoder, str]:
     """Build the encoder a study or command asks for.
 
@@ -50,12 +51,27 @@ def load_encoder(
     weights : a local open_clip checkpoint file (``clip`` only). Falls back to
         the ``EXPLORE_CLIP_WEIGHTS`` environment variable.
     progress : stream for the download progress bar of ``auto`` (None: none).
+    runtime : "torch" (the exact path) or "onnxruntime": the image tower run by
+        ONNX Runtime (``fast.OnnxRuntimeEncoder``, its own encoder id; needs the
+        ``fast`` extra, checked before any model is loaded). Offered for
+        ``bundled`` only (``fast.OFFERED_FAMILIES``: measured faster end to end).
 
     Returns
     -------
     (encoder, notice) : the notice is a one-line message for the user (which
         encoder ``auto`` chose and why), or "" when there is nothing to say.
     """
+    runtime = (runtime or "torch").strip().lower()
+    if runtime != "torch":
+        from explore.encoders import fast
+
+        if runtime not in fast.RUNTIMES:
+            raise EncoderUnavailable(f"unknown encoder runtime '{runtime}'; expected one of {', '.join(fast.RUNTIMES)}")
+        fast._require_onnxruntime()  # say what is missing before loading any model
+        if (name or "auto").strip().lower() == "clip":
+            raise EncoderUnavailable(fast.NOT_OFFERED)
+        encoder, notice = load_encoder(name, model=model, pretrained=pretrained, weights=weights, progress=progress)
+        return fast.with_runtime(encoder, runtime), notice
     name = (name or "auto").strip().lower()
     if name not in ENCODER_NAMES:
         raise EncoderUnavailable(f"unknown encoder '{name}'; expected one of {', '.join(ENCODER_NAMES)}")
