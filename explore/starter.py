@@ -91,6 +91,7 @@ SETTINGS_WRITTEN: dict[str, dict[str, tuple[str, object]]] = {
         "max_per_poster": ("at most this many photos per poster per brand x source (0 = no cap)", None),
         "reposts": ("a brand's own photo re-posted in its consumer set: exclude from consumer shares, or keep", None),
         "near_duplicates": ("near-identical pictures within a brand and source count once (exclude) or keep", None),
+        "commercial_posts": ("consumer photos that look like shop listings, product shots, screenshots or adverts: exclude from consumer shares, or keep (flagged, counted)", None),
     },
     "encoder": {
         "name": ("auto (clip when its weights are here or can be downloaded, else bundled) | bundled | clip", None),
@@ -126,6 +127,7 @@ SETTINGS_WRITTEN: dict[str, dict[str, tuple[str, object]]] = {
         "min_count": ("smallest image count behind a finding", None),
         "rare_category_share": ("a category rarely shows a context below this share", None),
         "dominance_ratio": ("another category dominates a context at this multiple of the brand's category share", None),
+        "edits": ("rename, merge or drop contexts a run found, by number (context = N) or by an image in them (image = ID or path): name = ..., merge_into = N or image, drop = true", [{"image": "Brand/consumer/photo.jpg", "name": "breakfast at home"}]),
     },
     "survey": {
         "file": ("survey CSV: brand, attribute, score[, category, sample_size]", "survey.csv"),
@@ -146,6 +148,8 @@ def _toml_value(value) -> str:
         return "true" if value else "false"
     if isinstance(value, (int, float)):
         return repr(value)
+    if isinstance(value, dict):
+        return "{ " + ", ".join(f"{k} = {_toml_value(v)}" for k, v in value.items()) + " }"
     if isinstance(value, (list, tuple)):
         return "[" + ", ".join(_toml_value(v) for v in value) + "]"
     return _toml_string(str(value))
