@@ -225,7 +225,7 @@ def test_demo_corrected_shares_cover_the_planted_truth(demo_run, truth):
     attribute lies inside the report's corrected-share 95 % interval in most cells, and
     inside the yes-rate interval far less often (the yes-rate estimates the model's
     yes-rate, not the prevalence). At 95 % coverage 72 cells give about 68 covered
-    (binomial sd 1.8); 62 leaves room for chance, and the yes-rate (23 here) fails it."""
+    (binomial sd 1.8); 62 leaves room for chance, and the yes-rate (22 here) fails it."""
     shares = pd.read_csv(demo_run / "attribute_shares.csv")
     cells = shares[(shares.level == "brand") & shares.source.isin(["consumer", "owned"])]
     attrs = sorted(cells.attribute.unique())
