@@ -48,7 +48,7 @@ negative = ["outdoors in nature"]
 """
 
 
-def make_tiny_study(folder: Path, output: str = "out", per_cell: int = 2) -> Path:
+def make_tiny_study(folder: Path, output: str = "out", per_cell: int = 2, brands=("Alpha", "Beta")) -> Path:
     """Two brands x two sources x ``per_cell`` generated JPEGs (seeded), a study file; returns it."""
     from PIL import Image, ImageDraw
 
@@ -56,7 +56,7 @@ def make_tiny_study(folder: Path, output: str = "out", per_cell: int = 2) -> Pat
 
     rng = random.Random(15)
     root = folder / "photos"
-    for brand in ("Alpha", "Beta"):
+    for brand in brands:
         for source in ("consumer", "owned"):
             cell = root / brand / source
             cell.mkdir(parents=True, exist_ok=True)
