@@ -143,6 +143,16 @@ def test_script_json_cannot_close_its_script_block():
     assert json.loads(text) == value
 
 
+def test_findings_csv_guards_formula_cells(hostile):
+    # findings.csv is written by the report, not by the run: it must carry the same
+    # formula guard as every table (OWASP "CSV Injection": a leading apostrophe).
+    out, _, _ = hostile
+    findings = pd.read_csv(Path(out) / "findings.csv", dtype=str, keep_default_na=False)
+    assert "'" + synth.FORMULA_BRAND in set(findings["brand"])
+    assert synth.FORMULA_BRAND in set(pd.read_parquet(Path(out) / "findings.parquet")["brand"])  # exact
+    assert not findings["brand"].str.match(r"[=+@\t\r]").any()
+
+
 def test_hostile_names_never_appear_as_markup(hostile):
     _, _, text = hostile
     for raw in (synth.HOSTILE_FILE, synth.HOSTILE_BRAND, synth.HOSTILE_ATTRIBUTE, synth.HOSTILE_PROMPT,
