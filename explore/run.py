@@ -104,6 +104,9 @@ def run_study(
     survey = preflight(study, weights=weights)
     labels_path = labels_path or study.labels.file
     label_table = read_labels_file(labels_path) if labels_path else None  # a bad file fails early too
+    if label_table is not None:
+        for line in label_attributes_preflight(label_table, study, labels_path):
+            log(line)
     final = Path(study.output)
     with OutputLock(final, "run") as lock:
         summary = RunSummary(study=study.name, output=final, run_id=lock.run_id)
@@ -458,6 +461,41 @@ def read_labels_file(path: Path) -> pd.DataFrame:
     return parse_labels_text(text, where=str(path))
 
 
+def label_attributes_preflight(table: pd.DataFrame, study: Study, labels_path) -> list[str]:
+    """Match the labels file's attribute names with the study's before any photo is read.
+
+    A file that names none of the study's attributes stops the command at once
+    (the usual cause: a labels file of another study, or a renamed attribute);
+    names the study does not have are listed in one line, and their rows are
+    left out later with the other row checks.
+
+    Raises
+    ------
+    StudyError naming the file, the names it has and the study's names.
+    """
+    from explore.attributes.labels import unguard
+
+    if "attribute" not in table.columns:
+        return []  # the row checks name the missing column
+    known = [a.name for a in study.attributes]
+    counts = table["attribute"].astype(str).str.strip().map(unguard).value_counts()
+    counts = counts[counts.index != ""]
+    unknown = [name for name in counts.index if name not in known]
+    if len(counts) and len(unknown) == len(counts):
+        from explore.study import StudyError
+
+        shown = ", ".join(f"'{name}'" for name in unknown[:8]) + (" ..." if len(unknown) > 8 else "")
+        raise StudyError(
+            f"{labels_path}: no label names an attribute of the study; the file names {shown}; "
+            f"the study has {', '.join(repr(k) for k in known) or 'no attributes'} "
+            "(add them to the study, or use --attribute NAME: POSITIVE / NEGATIVE)"
+        )
+    if unknown:
+        listed = ", ".join(f"'{name}' ({counts[name]} rows)" for name in unknown[:8])
+        return [f"labels: {labels_path}: attributes not in the study, their rows left out: {listed}"]
+    return []
+
+
 def check_labels(study: Study, labels: pd.DataFrame, embeddings, encoder, *, log: Callable[[str], None] = print):
     """Check every labelled attribute (shared by ``explore check`` and ``explore run``).
 
@@ -534,8 +572,9 @@ def check_study(
     """
     labels_path = Path(labels_path)
     table = read_labels_file(labels_path)
-
     preflight(study, weights=weights)
+    for line in label_attributes_preflight(table, study, labels_path):
+        log(line)
     final = Path(study.output)
     with OutputLock(final, "check") as lock:
         for note in lock.notes:

@@ -83,9 +83,19 @@ def explore_args(*args) -> list[str]:
     return [sys.executable, "-m", "explore.cli", "--quiet", *map(str, args)]
 
 
-def run(*args, cwd: Path, pause: str | None = None, timeout: float = 600) -> subprocess.CompletedProcess:
-    return subprocess.run(explore_args(*args), cwd=cwd, env=env(pause), capture_output=True, text=True,
-                          timeout=timeout)
+def run(*args, cwd: Path, pause: str | None = None, timeout: float = 600,
+        importtime: bool = False) -> subprocess.CompletedProcess:
+    """``explore ARGS`` in a new process; with ``importtime`` Python lists every module it
+    imports on stderr (``-X importtime``; ``imported`` reads them, ``error_lines`` skips them)."""
+    e = env(pause)
+    if importtime:
+        e["PYTHONPROFILEIMPORTTIME"] = "1"
+    return subprocess.run(explore_args(*args), cwd=cwd, env=e, capture_output=True, text=True, timeout=timeout)
+
+
+def imported(stderr: str) -> set[str]:
+    """The modules a process imported, from its ``-X importtime`` lines."""
+    return {line.rsplit("|", 1)[-1].strip() for line in stderr.splitlines() if line.startswith("import time:")}
 
 
 def start(*args, cwd: Path, pause: str | None = None) -> subprocess.Popen:
@@ -157,7 +167,7 @@ def run_id(out: Path) -> str:
 
 
 def error_lines(stderr: str) -> list[str]:
-    return [line for line in stderr.splitlines() if line.strip()]
+    return [line for line in stderr.splitlines() if line.strip() and not line.startswith("import time:")]
 
 
 # --------------------------------------------------------------------------
@@ -223,6 +233,7 @@ class Outcome:
     status: int | None = None
     message: str = ""
     intact: bool | None = None  # previous complete results byte-identical
+    imported: set = field(default_factory=set)  # modules the command imported (command_fault only)
     one_run: str = ""  # '' when the folder is one complete run
     leftovers: list[str] = field(default_factory=list)
     next_note: str = ""  # what the next command said about it
@@ -301,10 +312,11 @@ def command_fault(name: str, study: Path, out: Path, *args) -> Outcome:
     outcome = Outcome(name)
     before = snapshot(out)
     started = time.time()
-    done = run(*(args or ("run", study)), cwd=study.parent)
+    done = run(*(args or ("run", study)), cwd=study.parent, importtime=True)
     outcome.seconds = time.time() - started
     outcome.status = done.returncode
     outcome.message = " | ".join(error_lines(done.stderr))
+    outcome.imported = imported(done.stderr)
     outcome.intact = snapshot(out) == before
     outcome.leftovers = leftovers(out) if out.is_dir() else []
     outcome.one_run = one_run(out) if (out / "run.json").is_file() else ""
