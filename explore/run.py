@@ -321,7 +321,7 @@ def _run_stages(
         summary.notes += [f"attributes: {note}" for note in attribute_notes]
     # --- end attributes --------------------------------------------------------
 
-    # --- contexts (explore/contexts.py): UMAP + HDBSCAN, names, brand indices ---
+    # --- contexts (explore/contexts/): UMAP + HDBSCAN, names, brand indices ---
     if len(embeddings.image_ids) >= 3:
         with timer("contexts"):
             from explore import contexts

@@ -230,7 +230,7 @@ def make_output_folder(
             ctx_rows.append(dict(context_id=c, context=name, size=len(members), share=len(members) / n,
                                  name_score=0.3, alternatives=f"{name} outdoors | {name} at home",
                                  exemplars=" ".join(members[:6]), min_cluster_size=5))
-        # As contexts.py writes it: unassigned images as context -1, last.
+        # As explore/contexts/stage.py writes it: unassigned images as context -1, last.
         ctx_rows.append(dict(context_id=-1, context="unassigned", size=int((contexts_of < 0).sum()),
                              share=float((contexts_of < 0).mean()), name_score=np.nan, alternatives="",
                              exemplars="", min_cluster_size=5))
