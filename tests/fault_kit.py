@@ -262,14 +262,15 @@ def copy_study(source: Path, target: Path, with_cache: bool = True) -> Path:
     return target / "study.toml"
 
 
-def concurrent_runs(study: Path, out: Path) -> Outcome:
-    """A run paused after collect; a second run on the same study must be refused before writing."""
-    outcome = Outcome("two runs on one study at once")
+def concurrent_runs(study: Path, out: Path, *second_args, name: str = "two runs on one study at once") -> Outcome:
+    """A run paused after collect; a second command (default: another run) on the same study
+    must be refused before writing."""
+    outcome = Outcome(name)
     before = snapshot(out)
     first = start("run", study, cwd=study.parent, pause="collect")
     wait_stopped(first)
     started = time.time()
-    second = run("run", study, cwd=study.parent)
+    second = run(*(second_args or ("run", study)), cwd=study.parent)
     outcome.seconds = time.time() - started
     outcome.status = second.returncode
     outcome.message = " | ".join(error_lines(second.stderr))

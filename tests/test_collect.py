@@ -646,3 +646,31 @@ def test_study_keys_for_posters_reach_collect(tmp_path):
         study_from_dict({"images": {"root": "photos", "max_per_poster": -1}}, tmp_path / "study.toml")
     with pytest.raises(StudyError, match="exclude each other"):
         study_from_dict({"images": {"manifest": "m.csv", "metadata": "posters.csv"}}, tmp_path / "study.toml")
+
+
+def test_headers_of_manifest_sidecar_and_survey_are_case_insensitive(tmp_path):
+    # One rule for every CSV a user writes by hand (as the labels file): header names are
+    # matched whatever their case and surrounding spaces.
+    from PIL import Image
+
+    from explore.compare import read_survey
+
+    for rel in ("Alba/consumer/a.jpg", "Alba/owned/b.jpg"):
+        (tmp_path / rel).parent.mkdir(parents=True, exist_ok=True)
+        Image.new("RGB", (40, 30), (200, 30, 30) if "a.jpg" in rel else (30, 30, 200)).save(tmp_path / rel)
+    manifest = tmp_path / "manifest.csv"
+    manifest.write_text(" PATH ,Brand,SOURCE,Poster,Posted_At\nAlba/consumer/a.jpg,Alba,consumer,p1,2024-05-01\n"
+                        "Alba/owned/b.jpg,Alba,owned,p2,2024-05-02\n", encoding="utf-8")
+    table = collect_images(manifest=manifest, progress=False).set_index("relpath")
+    assert (table["status"] == "ok").all() and table.loc["Alba/consumer/a.jpg", "poster"] == "p1"
+    assert table.loc["Alba/owned/b.jpg", "posted_at"].startswith("2024-05-02")
+
+    side = tmp_path / "posters.csv"
+    side.write_text("Path,POSTER\nAlba/consumer/a.jpg,p9\n", encoding="utf-8")
+    tree = collect_images(root=tmp_path, metadata=side, progress=False, exclude=(manifest, side)).set_index("relpath")
+    assert tree.loc["Alba/consumer/a.jpg", "poster"] == "p9"
+
+    survey = tmp_path / "survey.csv"
+    survey.write_text("Brand , ATTRIBUTE,Score\nAlba,rugged,4.5\n", encoding="utf-8")
+    read = read_survey(survey)
+    assert read.loc[0, "brand"] == "Alba" and read.loc[0, "attribute"] == "rugged" and read.loc[0, "score"] == 4.5

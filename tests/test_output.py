@@ -107,6 +107,20 @@ def test_report_refuses_tables_of_different_runs(complete, tmp_path):
     assert "mixes results of different runs" in done.stderr and "Traceback" not in done.stderr
 
 
+@pytest.mark.parametrize("command", ["report", "check"])
+def test_report_and_check_are_refused_while_a_run_holds_the_folder(complete, command):
+    study, out = complete
+    labels = study.parent / "labels.csv"
+    labels.write_text("image,attribute,label\nAlpha/consumer/0.jpg,sunny,1\nBeta/owned/1.jpg,sunny,0\n",
+                      encoding="utf-8")
+    args = ("report", study) if command == "report" else ("check", study, "--labels", labels)
+    outcome = kit.concurrent_runs(study, out, *args, name=f"{command} during a run")
+    assert outcome.status == 2, outcome.message
+    assert outcome.message.count("explore: error:") == 1 and "Traceback" not in outcome.message
+    assert "in use by another explore run (process" in outcome.message
+    assert outcome.intact and outcome.leftovers == [] and outcome.one_run == ""  # the run then completed alone
+
+
 def test_output_path_that_is_a_file(complete, tmp_path):
     study, _ = complete
     outcome = kit.output_is_file(tmp_path, study.parent)

@@ -135,6 +135,26 @@ def test_overview_states_encoder_quality_and_cautions(built):
     assert "2026-01-02 03:04:05 UTC" in text  # run date from run.json
 
 
+def test_offline_fallback_report_says_what_bundled_sees_and_how_to_get_clip(tmp_path):
+    # The run of an `auto` study that fell back to bundled: the report carries the notice
+    # `load_encoder` printed, says what the offline encoder can and cannot see, and how to
+    # get the clip model (explore fetch-model, README "Offline machines").
+    from explore.encoders import fallback_notice
+
+    out = synth.make_output_folder(tmp_path / "fallback", 20)
+    notice = fallback_notice("ViT-B-32-256", "datacomp_s34b_b86k", "HF_HUB_OFFLINE is set", "the Hugging Face cache")
+    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    run["encoder_notice"] = notice
+    (out / "run.json").write_text(json.dumps(run), encoding="utf-8")
+    card = re.search(r'<div class="card card-encoder card-lower">(.*?)</div>', write_report(out).read_text(), re.S)
+    assert card, "no lower-fidelity encoder card"
+    card = html.unescape(card.group(1))
+    assert "It can see objects, animals, food, drinks" in card
+    assert "it cannot see mood, style, light, colour schemes, facial expressions, logos or text" in card
+    assert "explore fetch-model" in card and "Offline machines" in card
+    assert notice in card and "auto chose bundled" in card
+
+
 def test_script_json_cannot_close_its_script_block():
     value = {"a": "</script><script>alert(1)</script>", "b": "x & y > z", "c": "line\u2028sep", "n": [1, 2.5, None]}
     text = script_json(value)
