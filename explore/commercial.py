@@ -30,6 +30,8 @@ TOLERANCE = 12
 BORDER = 0.08
 #: Side the picture is reduced to before measuring (cheap; plainness survives).
 SIDE = 128
+#: Names the measurement, so remembered plain shares (``known_plain``) of other settings are not reused.
+PLAIN_VERSION = f"plain-v1-{SIDE}-{BORDER}-{TOLERANCE}"
 
 COMMERCIAL_PROMPTS = (
     "a product photo on a plain white background",
@@ -128,25 +130,30 @@ def reasons(plain: np.ndarray, margin: np.ndarray, flagged: np.ndarray) -> list[
     return out
 
 
-def flag_commercial(images: pd.DataFrame, embeddings, encode_texts, mode: str = "exclude", log=None):
+def flag_commercial(images: pd.DataFrame, embeddings, encode_texts, mode: str = "exclude", log=None,
+                    known_plain: dict | None = None):
     """Flag consumer photos that look commercial; with ``exclude`` drop them from the rows used.
 
     Parameters
     ----------
-    images : the images table (``status``, ``source``, ``path``, ``image_id``).
+    images : the images table (``status``, ``source``, ``path``, ``image_id``, ``sha256``).
     embeddings : ``embed.Embeddings`` of its usable rows.
     encode_texts : the encoder's text function (prompt vectors).
     mode : ``exclude`` (status ``commercial``, vectors dropped) or ``keep`` (columns only).
+    known_plain : {sha256: plain border share} measured before (``PLAIN_VERSION``);
+        those files are not opened again (a re-run reads no image here).
 
     Returns
     -------
-    (images, embeddings, notes): the table with ``commercial_score``,
-    ``commercial_flagged``, ``commercial_reason`` (NaN / False / "" outside the
-    usable consumer rows), the embeddings of the rows still ``ok``, notes.
+    (images, embeddings, notes): the table with ``commercial_plain``,
+    ``commercial_score``, ``commercial_flagged``, ``commercial_reason`` (NaN /
+    False / "" outside the usable consumer rows), the embeddings of the rows
+    still ``ok``, notes.
     """
     if mode not in MODES:
         raise ValueError(f"images.commercial_posts is '{mode}'; expected one of {', '.join(MODES)}")
     table = images.copy()
+    table["commercial_plain"] = np.nan
     table["commercial_score"] = np.nan
     table["commercial_flagged"] = False
     table["commercial_reason"] = ""
@@ -155,7 +162,13 @@ def flag_commercial(images: pd.DataFrame, embeddings, encode_texts, mode: str = 
     target = table.index[(table["status"] == "ok") & (table["source"] == "consumer") & ids.notna()]
     if len(target):
         rows = ids[target].astype(int).to_numpy()
-        plain = plain_shares(table.loc[target, "path"].astype(str).tolist(), log=log)
+        known = known_plain or {}
+        shas = table.loc[target, "sha256"].astype(str).to_numpy() if "sha256" in table else np.full(len(target), "")
+        plain = np.array([known.get(sha, np.nan) for sha in shas], dtype=float)
+        todo = np.flatnonzero(~np.isfinite(plain))
+        if len(todo):
+            plain[todo] = plain_shares(table.loc[target[todo], "path"].astype(str).tolist(), log=log)
+        table.loc[target, "commercial_plain"] = plain
         margin = prompt_margin(embeddings.joint[rows], encode_texts)
         score = commercial_score(plain, margin)
         flagged = score >= THRESHOLD

@@ -129,6 +129,34 @@ def run_study(
     return summary
 
 
+#: In the cache folder: per content (sha256), the commercial flag's plain border share.
+PLAIN_CACHE = "plain_border.parquet"
+
+
+def read_measures(path: Path, version: str) -> dict[str, float]:
+    """{sha256: value} measured by an earlier run under ``version`` ({} when none or unreadable)."""
+    try:
+        table = pd.read_parquet(path)
+        table = table[table["version"] == version]
+        return dict(zip(table["sha256"].astype(str), table["value"].astype(float)))
+    except Exception:  # missing, damaged or of another layout: measure again
+        return {}
+
+
+def write_measures(path: Path, version: str, values: dict[str, float]) -> None:
+    """Keep ``values`` for the next run (atomic; unchanged values are not rewritten)."""
+    if not values or read_measures(path, version) == values:
+        return
+    table = pd.DataFrame({"sha256": list(values), "value": list(values.values())})
+    table["version"] = version
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        table.to_parquet(tmp, index=False)
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
 def skip_changed(images: pd.DataFrame, skipped: dict) -> pd.DataFrame:
     """The images table with the rows of ``skipped`` (sha256 -> (status, reason)) marked as skipped."""
     images = images.copy()
@@ -272,10 +300,14 @@ def _run_stages(
     with timer("commercial posts"):
         from explore import commercial
 
+        plain_path = out / "cache" / PLAIN_CACHE
+        known_plain = read_measures(plain_path, commercial.PLAIN_VERSION)
         images, embeddings, commercial_notes = commercial.flag_commercial(
             images, embeddings, encoder.encode_texts, mode=getattr(study.images, "commercial_posts", "exclude"),
-            log=log,
+            log=log, known_plain=known_plain,
         )
+        measured = images.loc[images["commercial_plain"].notna(), ["sha256", "commercial_plain"]]
+        write_measures(plain_path, commercial.PLAIN_VERSION, {**known_plain, **dict(zip(measured["sha256"], measured["commercial_plain"]))})
         summary.notes += commercial_notes
         for note in commercial_notes:
             log(note)

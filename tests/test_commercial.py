@@ -124,3 +124,24 @@ def test_labels_on_dropped_rows_remap_or_are_left_out_with_a_reason():
     assert labels.image_id.tolist() == ["keep1"] and labels.label.tolist() == [1]
     assert any("row 3" in w and "commercial post" in w and "not used for corrected shares" in w for w in warnings)
     assert any("row 4" in w and "repost" in w and "not used for corrected shares" in w for w in warnings)
+
+
+def test_known_plain_shares_are_not_measured_again(tmp_path):
+    # A re-run passes the plain shares measured before (by content hash): the same flags and
+    # scores come out without opening a file (here the files are gone).
+    table, emb = write_rows(tmp_path)
+    table["sha256"] = [f"sha{k}" for k in range(len(table))]
+    first, _, _ = commercial.flag_commercial(table, emb, fake_encode_texts, mode="exclude")
+    measured = first[first["commercial_plain"].notna()]
+    assert len(measured) == (table["source"] == "consumer").sum()
+    known = dict(zip(measured["sha256"], measured["commercial_plain"]))
+    for path in table["path"]:
+        Path(path).unlink()
+    said = []
+    again, _, _ = commercial.flag_commercial(table, emb, fake_encode_texts, mode="exclude", log=said.append,
+                                             known_plain=known)
+    assert said == []  # nothing opened, nothing failed
+    pd.testing.assert_frame_equal(again, first)
+    # without them the missing files are named and the flags change
+    lost, _, _ = commercial.flag_commercial(table, emb, fake_encode_texts, mode="exclude", log=said.append)
+    assert len(said) == len(measured) and lost["commercial_plain"].isna().all()
