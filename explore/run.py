@@ -523,7 +523,7 @@ def label_attributes_preflight(table: pd.DataFrame, study: Study, labels_path) -
             "(add them to the study, or use --attribute NAME: POSITIVE / NEGATIVE)"
         )
     if unknown:
-        listed = ", ".join(f"'{name}' ({counts[name]} rows)" for name in unknown[:8])
+        listed = ", ".join(f"'{name}' ({counts[name]} row{'s' if counts[name] != 1 else ''})" for name in unknown[:8])
         return [f"labels: {labels_path}: attributes not in the study, their rows left out: {listed}"]
     return []
 
