@@ -1,22 +1,26 @@
 """Precision and recall of the commercial-post flag on an outside labelled set (never the demo).
 
-Set: ``benchmarks/commercial_set.py`` ("outside-commercial-v1"): openclipart-png
-objects on plain colour, PIL-rendered Debian documentation text, openclipart +
-text adverts (positives); crops of scikit-image sample photos and openclipart
-objects pasted into them (negatives). Seeded split into a fit half and a check
-half, stratified by kind.
+Set: ``benchmarks/commercial_set.py`` ("outside-commercial-v2", its docstring
+defines it): pinned sources only (Debian base-files licence texts,
+openclipart-png objects, mate-backgrounds and lomiri-wallpapers-16.04
+photographs, scikit-image's sample photos, DejaVu fonts). Positives: products
+on plain colour, shop listings, text screenshots, text-heavy adverts, memes;
+negatives: photo crops, objects in photos, photos with a small caption, photos
+padded to square. Seeded split into a fit half and a check half, stratified by
+kind.
 
 On the fit half: a logistic regression (scikit-learn) over the two signals of
 ``explore/commercial.py`` (plain border share, prompt margin) gives the
 coefficients; ``--fit`` prints them (copy them into explore/commercial.py).
-On the check half: precision, recall (scikit-learn ``precision_score``,
-``recall_score``) and ROC AUC of the shipped constants, per signal and combined,
-and recall per kind.
+On the check half only: precision, recall (scikit-learn ``precision_score``,
+``recall_score``) and ROC AUC of the shipped constants, per signal and combined;
+recall per positive kind; false-positive rate per negative kind and per photo
+source.
 
 Encoders: ``bundled`` always; ``clip`` only when its weights are local (not on
 the build machine: the row says so).
 
-    .venv/bin/python benchmarks/commercial_flag.py [--fit] [--n 24]
+    .venv/bin/python benchmarks/commercial_flag.py [--fit] [--n 40]
 """
 
 from __future__ import annotations
@@ -55,15 +59,16 @@ def main(argv=None) -> int:
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--fit", action="store_true", help="print the logistic coefficients fitted on the fit half")
-    ap.add_argument("--n", type=int, default=24, help="images per kind (five kinds)")
+    ap.add_argument("--n", type=int, default=40, help="images per kind (nine kinds)")
     args = ap.parse_args(argv)
 
-    images, labels, kinds = commercial_set.build(args.n)
+    images, labels, kinds, recipes = commercial_set.build(args.n)
     fit, check = commercial_set.halves(kinds)
     kinds = np.asarray(kinds)
+    photo_source = np.array([r.split("photo=", 1)[1].split("/", 1)[0] if "photo=" in r else "" for r in recipes])
     plain = np.array([commercial.plain_border_share(im) for im in images])
-    print(f"set: {commercial_set.NAME}, {len(labels)} images ({int(labels.sum())} commercial), "
-          f"fit half {int(fit.sum())}, check half {int(check.sum())}")
+    print(f"set: {commercial_set.NAME} (fingerprint {commercial_set.fingerprint(recipes)}), {len(labels)} images "
+          f"({int(labels.sum())} commercial), fit half {int(fit.sum())}, check half {int(check.sum())}")
     os.environ.setdefault("HF_HUB_OFFLINE", "1")  # clip: local weights only, never a download here
     for name in ("bundled", "clip"):
         try:
@@ -85,9 +90,18 @@ def main(argv=None) -> int:
               f"recall {recall_score(y, flagged[check]):.3f}, AUC {roc_auc_score(y, score[check]):.3f}")
         print(f"  plain border share alone: AUC {roc_auc_score(y, plain[check]):.3f}; "
               f"prompt margin alone: AUC {roc_auc_score(y, margin[check]):.3f}")
-        for kind in dict.fromkeys(kinds):
+        for kind in commercial_set.POSITIVE_KINDS:
             m = check & (kinds == kind)
-            print(f"  {kind}: {int(flagged[m].sum())} of {int(m.sum())} flagged")
+            print(f"  recall, {kind}: {flagged[m].mean():.2f} ({int(flagged[m].sum())} of {int(m.sum())} flagged; "
+                  f"median plain {np.median(plain[m]):.2f}, margin {np.median(margin[m]):+.3f})")
+        for kind in commercial_set.NEGATIVE_KINDS:
+            m = check & (kinds == kind)
+            print(f"  false positives, {kind}: {flagged[m].mean():.2f} ({int(flagged[m].sum())} of {int(m.sum())}; "
+                  f"median plain {np.median(plain[m]):.2f}, margin {np.median(margin[m]):+.3f})")
+        negative = check & (labels == 0)
+        for source in sorted(set(photo_source[negative])):
+            m = negative & (photo_source == source)
+            print(f"  false positives, negatives from {source} photos: {int(flagged[m].sum())} of {int(m.sum())}")
     return 0
 
 
