@@ -165,7 +165,8 @@ class _Text:
         return text, f"{name}@{start}+{n}:{_digest(str(LICENCES / name))}"
 
 
-def _clips() -> list[tuple[str, Path]]:
+@lru_cache(maxsize=1)
+def _clips() -> tuple[tuple[str, Path], ...]:
     from PIL import Image
 
     out = []
@@ -181,7 +182,7 @@ def _clips() -> list[tuple[str, Path]]:
                 out.append((folder, path))
     if not out:
         raise SetUnavailable(f"{NAME}: no clip art under {CLIPART} (Debian openclipart-png)")
-    return out
+    return tuple(out)
 
 
 @lru_cache(maxsize=None)
@@ -193,8 +194,9 @@ def _clip_image(path: str):
     return art.crop(art.getchannel("A").getbbox())
 
 
-def _photos() -> list[tuple[str, object]]:
-    """(label, RGB image at most 1024 px on the long side) of every pinned photo, in order."""
+@lru_cache(maxsize=1)
+def _photos() -> tuple[tuple[str, object], ...]:
+    """(label, RGB image at most 1024 px on the long side) of every pinned photo, in order (read-only)."""
     import skimage.data as data
     from PIL import Image
 
@@ -208,14 +210,14 @@ def _photos() -> list[tuple[str, object]]:
             rgb = im.convert("RGB")
         rgb.thumbnail((1024, 1024))
         out.append((f"{source}/{path.name}:{_digest(str(path))}", rgb))
-    return out
+    return tuple(out)
 
 
 class _Builder:
     def __init__(self, seed: int):
         self.rng = random.Random(seed)
         self.text = _Text()
-        clips = _clips()
+        clips = list(_clips())
         self.rng.shuffle(clips)
         self.clips = clips
         self.next_clip = 0
