@@ -46,17 +46,20 @@ PHOTO_PROMPTS = (
     "a photo of a landscape",
 )
 
-#: Logistic model over (plain, margin): fitted by benchmarks/commercial_flag.py
-#: on the fit half of its outside set (bundled encoder); see that script.
-COEF_PLAIN = 6.88
-COEF_MARGIN = 61.08
-INTERCEPT = 6.08
-#: Probability at or above which a photo is flagged.
-THRESHOLD = 0.5
+#: Logistic model over (plain, margin) and its threshold: fitted by
+#: ``benchmarks/commercial_flag.py --fit`` (bundled encoder) on the fit half (180
+#: images) of the outside set "outside-commercial-v2" (benchmarks/commercial_set.py,
+#: fingerprint b4ad17b14106bf62); figures on its check half: see README "Commercial posts".
+COEF_PLAIN = 2.32
+COEF_MARGIN = 64.49
+INTERCEPT = 9.04
+#: Probability at or above which a photo is flagged: the lowest at which at most 10 % of
+#: the fit half's ordinary photos are flagged (a false positive drops a genuine consumer photo).
+THRESHOLD = 0.66
 #: ``plain`` at or above which the reason names the plain background.
 PLAIN_REASON = 0.6
-#: Prompt margin above which the reason names the prompts (the margin at plain = 0.5 and score 0.5).
-MARGIN_REASON = -(INTERCEPT + COEF_PLAIN * 0.5) / COEF_MARGIN
+#: Prompt margin above which the reason names the prompts (the margin that flags a photo whose border is half plain).
+MARGIN_REASON = float((np.log(THRESHOLD / (1 - THRESHOLD)) - INTERCEPT - COEF_PLAIN * 0.5) / COEF_MARGIN)
 
 MODES = ("exclude", "keep")
 
