@@ -63,7 +63,7 @@ def _flag_reposts(table: pd.DataFrame, exclude: bool) -> None:
 
 
 def is_near_copy(table: pd.DataFrame) -> pd.Series:
-    """Rows that are reposts by a confirmed near-copy (not the same file): ``repost_of`` came from ``near_repost_of``."""
+    """Rows that are reposts by a confirmed near-copy, not the same file (``repost_of`` = ``near_repost_of``)."""
     if "repost_of" not in table or "near_repost_of" not in table:
         return pd.Series(False, index=table.index)
     repost_of = table["repost_of"].fillna("").astype(str)

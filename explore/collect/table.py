@@ -264,9 +264,10 @@ def summarise(table: pd.DataFrame, examples: int = 5) -> str:
         brands = table.loc[reposted, "brand"].nunique()
         excluded = int((table["status"] == "repost").sum())
         near_copies = int(is_near_copy(table).sum())
+        kinds = f"{int(reposted.sum()) - near_copies} same file, {near_copies} near-cop{'y' if near_copies == 1 else 'ies'}"
         lines.append(
             f"{int(reposted.sum())} consumer photo(s) of {brands} brand(s) are reposts of the brand's own "
-            f"photos ({int(reposted.sum()) - near_copies} same file, {near_copies} near-copies; "
+            f"photos ({kinds}; "
             + ("left out of consumer shares)" if excluded else "kept in consumer shares)")
         )
     proposed = table["near_repost_of"].fillna("") != "" if "near_repost_of" in table else reposted & False
