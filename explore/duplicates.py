@@ -28,10 +28,12 @@ consumer row becomes a repost like an exact one: ``repost_of`` = the owned
 image id, and with ``images.reposts = "exclude"`` (default) status ``repost``.
 
 Order, fixed: reposts are decided first, then near-duplicates among the rows
-still ``ok``. A row that became a repost keeps no near-duplicate proposal. A
-near-duplicate proposal whose earlier partner became a repost is still judged
-by its cosine (the pair is near-identical either way): under ``exclude`` both
-then leave the shares, the later one as ``near_duplicate`` of the repost.
+still ``ok``. A row that became a repost (status ``repost``) keeps no
+near-duplicate proposal; under ``images.reposts = "keep"`` it stays ``ok`` and
+may still be a near-duplicate of an earlier row. A near-duplicate proposal
+whose earlier partner became a repost is still judged by its cosine (the pair
+is near-identical either way): under ``exclude`` both then leave the shares,
+the later one as ``near_duplicate`` of the repost.
 """
 
 from __future__ import annotations
