@@ -246,16 +246,7 @@ def _run_stages(
         summary.images_found = len(images)
         summary.images_used = int((images["status"] == "ok").sum())
         summary.images_skipped = summary.images_found - summary.images_used
-        reposts = collect.repost_summary(images)
-        for row in reposts.itertuples():
-            summary.notes.append(
-                f"collect: {row.brand}: {row.reposts} of {row.consumer_files} consumer photos are reposts of "
-                f"its own photos ({'left out of' if row.excluded else 'kept in'} consumer shares), "
-                f"e.g. {row.examples}"
-            )
-        summary.tables += write_tables(
-            out, {"images": images, "skipped": collect.skipped_files(images), "reposts": reposts}
-        )
+        summary.tables += write_tables(out, {"images": images, "skipped": collect.skipped_files(images)})
         summary.notes.append(f"collect: {collect.poster_note(images)}")
 
     with timer("embed"):
@@ -293,9 +284,22 @@ def _run_stages(
         from explore import duplicates
 
         images, embeddings, near_notes = duplicates.confirm_near_duplicates(
-            images, embeddings, exclude=getattr(study.images, "near_duplicates", "exclude") == "exclude"
+            images,
+            embeddings,
+            exclude=getattr(study.images, "near_duplicates", "exclude") == "exclude",
+            exclude_reposts=getattr(study.images, "reposts", "exclude") == "exclude",
         )
         summary.notes += near_notes
+        # Reposts are known only now: the same file (collect) and near-copies (confirmed above).
+        reposts = collect.repost_summary(images)
+        for row in reposts.itertuples():
+            near = f"{row.near_copies} near-cop{'y' if row.near_copies == 1 else 'ies'}"
+            summary.notes.append(
+                f"reposts: {row.brand}: {row.reposts} of {row.consumer_files} consumer photos are reposts of "
+                f"its own photos ({row.same_file} same file, {near}; "
+                f"{'left out of' if row.excluded else 'kept in'} consumer shares), e.g. {row.examples}"
+            )
+        summary.tables += write_tables(out, {"reposts": reposts})
 
     with timer("commercial posts"):
         from explore import commercial
@@ -307,7 +311,8 @@ def _run_stages(
             log=log, known_plain=known_plain,
         )
         measured = images.loc[images["commercial_plain"].notna(), ["sha256", "commercial_plain"]]
-        write_measures(plain_path, commercial.PLAIN_VERSION, {**known_plain, **dict(zip(measured["sha256"], measured["commercial_plain"]))})
+        known_plain.update(zip(measured["sha256"], measured["commercial_plain"]))
+        write_measures(plain_path, commercial.PLAIN_VERSION, known_plain)
         summary.notes += commercial_notes
         for note in commercial_notes:
             log(note)

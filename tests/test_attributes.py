@@ -609,6 +609,7 @@ def labelled_tree(tmp_path_factory):
     (root / "study.toml").write_text(
         'name = "labelled"\noutput = "out"\n[images]\nroot = "images"\n'
         'near_duplicates = "keep"\n'  # the photos are deliberate variants of five photos
+        'reposts = "keep"\n'  # so some consumer variants are near-copies of owned ones: count them all
         '[scoring]\nbootstrap_samples = 100\n'
         '[[attribute]]\nname = "animal"\npositive = ["an animal", "a pet cat"]\n'
         'negative = ["an object", "a landscape"]\n',

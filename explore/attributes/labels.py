@@ -71,7 +71,8 @@ def parse_labels_text(text: str, where: str = "labels") -> pd.DataFrame:
 #: Statuses whose labels are dropped with their own sentence (rather than remapped to a kept image).
 LEFT_OUT = {
     "commercial": "was left out as a commercial post (images.commercial_posts = 'exclude')",
-    "repost": "is a repost of the brand's own photo, left out of consumer shares (images.reposts = 'exclude')",
+    "repost": "is a repost of the brand's own photo (the same file or a near-copy), left out of consumer shares "
+    "(images.reposts = 'exclude')",
 }
 
 
