@@ -9,7 +9,7 @@ templates, so nothing is worded by hand for the test.
 
 Measures: ROC AUC of the prompt-pair margin for three topic pairs
 (scikit-learn ``roc_auc_score``), and 10-way zero-shot accuracy (chance 0.10)
-by the rule explore names contexts with (explore/contexts.py): each topic's
+by the rule explore names contexts with (explore/contexts/naming.py): each topic's
 similarity standardised over all images, then the highest; the plain argmax
 of the raw similarities is printed beside it.
 """

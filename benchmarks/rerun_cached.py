@@ -121,6 +121,11 @@ def rerun(study_path: Path) -> None:
     import explore.embed as embed
 
     embed.embed_table = timed("embed (cache)", embed.embed_table)
+    import explore.commercial as commercial
+    import explore.duplicates as duplicates
+
+    duplicates.confirm_near_duplicates = timed("near-duplicates", duplicates.confirm_near_duplicates)
+    commercial.flag_commercial = timed("commercial posts", commercial.flag_commercial)
     attributes.attribute_tables = stop
     lines = []
     try:

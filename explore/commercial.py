@@ -30,6 +30,8 @@ TOLERANCE = 12
 BORDER = 0.08
 #: Side the picture is reduced to before measuring (cheap; plainness survives).
 SIDE = 128
+#: Names the measurement, so remembered plain shares (``known_plain``) of other settings are not reused.
+PLAIN_VERSION = f"plain-v1-{SIDE}-{BORDER}-{TOLERANCE}"
 
 COMMERCIAL_PROMPTS = (
     "a product photo on a plain white background",
@@ -44,20 +46,22 @@ PHOTO_PROMPTS = (
     "a photo of a landscape",
 )
 
-#: Logistic model over (plain, margin): fitted by benchmarks/commercial_flag.py
-#: on the fit half of its outside set (bundled encoder); see that script. The
-#: margin lives in the bundled joint space, so these are refitted whenever its
-#: vectors change (now bundled-v5; check half: precision 0.868, recall 0.917,
-#: AUC 0.920, the precision and recall bundled-v4 had with its own constants).
-COEF_PLAIN = 7.07
-COEF_MARGIN = 49.91
-INTERCEPT = -1.87
-#: Probability at or above which a photo is flagged.
-THRESHOLD = 0.5
+#: Logistic model over (plain, margin) and its threshold: fitted by
+#: ``benchmarks/commercial_flag.py --fit`` (bundled encoder) on the fit half (180
+#: images) of the outside set "outside-commercial-v2" (benchmarks/commercial_set.py,
+#: fingerprint b4ad17b14106bf62); figures on its check half: see README "Commercial posts".
+#: The prompt margin lives in the bundled joint space, so they are refitted whenever its
+#: vectors change (these: bundled-v5).
+COEF_PLAIN = 2.12
+COEF_MARGIN = 64.66
+INTERCEPT = 1.74
+#: Probability at or above which a photo is flagged: the lowest at which at most 10 % of
+#: the fit half's ordinary photos are flagged (a false positive drops a genuine consumer photo).
+THRESHOLD = 0.66
 #: ``plain`` at or above which the reason names the plain background.
 PLAIN_REASON = 0.6
-#: Prompt margin above which the reason names the prompts (the margin at plain = 0.5 and score 0.5).
-MARGIN_REASON = -(INTERCEPT + COEF_PLAIN * 0.5) / COEF_MARGIN
+#: Prompt margin above which the reason names the prompts (the margin that flags a photo whose border is half plain).
+MARGIN_REASON = float((np.log(THRESHOLD / (1 - THRESHOLD)) - INTERCEPT - COEF_PLAIN * 0.5) / COEF_MARGIN)
 
 MODES = ("exclude", "keep")
 
@@ -131,25 +135,30 @@ def reasons(plain: np.ndarray, margin: np.ndarray, flagged: np.ndarray) -> list[
     return out
 
 
-def flag_commercial(images: pd.DataFrame, embeddings, encode_texts, mode: str = "exclude", log=None):
+def flag_commercial(images: pd.DataFrame, embeddings, encode_texts, mode: str = "exclude", log=None,
+                    known_plain: dict | None = None):
     """Flag consumer photos that look commercial; with ``exclude`` drop them from the rows used.
 
     Parameters
     ----------
-    images : the images table (``status``, ``source``, ``path``, ``image_id``).
+    images : the images table (``status``, ``source``, ``path``, ``image_id``, ``sha256``).
     embeddings : ``embed.Embeddings`` of its usable rows.
     encode_texts : the encoder's text function (prompt vectors).
     mode : ``exclude`` (status ``commercial``, vectors dropped) or ``keep`` (columns only).
+    known_plain : {sha256: plain border share} measured before (``PLAIN_VERSION``);
+        those files are not opened again (a re-run reads no image here).
 
     Returns
     -------
-    (images, embeddings, notes): the table with ``commercial_score``,
-    ``commercial_flagged``, ``commercial_reason`` (NaN / False / "" outside the
-    usable consumer rows), the embeddings of the rows still ``ok``, notes.
+    (images, embeddings, notes): the table with ``commercial_plain``,
+    ``commercial_score``, ``commercial_flagged``, ``commercial_reason`` (NaN /
+    False / "" outside the usable consumer rows), the embeddings of the rows
+    still ``ok``, notes.
     """
     if mode not in MODES:
         raise ValueError(f"images.commercial_posts is '{mode}'; expected one of {', '.join(MODES)}")
     table = images.copy()
+    table["commercial_plain"] = np.nan
     table["commercial_score"] = np.nan
     table["commercial_flagged"] = False
     table["commercial_reason"] = ""
@@ -158,7 +167,13 @@ def flag_commercial(images: pd.DataFrame, embeddings, encode_texts, mode: str = 
     target = table.index[(table["status"] == "ok") & (table["source"] == "consumer") & ids.notna()]
     if len(target):
         rows = ids[target].astype(int).to_numpy()
-        plain = plain_shares(table.loc[target, "path"].astype(str).tolist(), log=log)
+        known = known_plain or {}
+        shas = table.loc[target, "sha256"].astype(str).to_numpy() if "sha256" in table else np.full(len(target), "")
+        plain = np.array([known.get(sha, np.nan) for sha in shas], dtype=float)
+        todo = np.flatnonzero(~np.isfinite(plain))
+        if len(todo):
+            plain[todo] = plain_shares(table.loc[target[todo], "path"].astype(str).tolist(), log=log)
+        table.loc[target, "commercial_plain"] = plain
         margin = prompt_margin(embeddings.joint[rows], encode_texts)
         score = commercial_score(plain, margin)
         flagged = score >= THRESHOLD

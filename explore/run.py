@@ -104,6 +104,9 @@ def run_study(
     survey = preflight(study, weights=weights)
     labels_path = labels_path or study.labels.file
     label_table = read_labels_file(labels_path) if labels_path else None  # a bad file fails early too
+    if label_table is not None:
+        for line in label_attributes_preflight(label_table, study, labels_path):
+            log(line)
     final = Path(study.output)
     with OutputLock(final, "run") as lock:
         summary = RunSummary(study=study.name, output=final, run_id=lock.run_id)
@@ -124,6 +127,34 @@ def run_study(
     if summary.report is not None:
         summary.report = final / summary.report.name
     return summary
+
+
+#: In the cache folder: per content (sha256), the commercial flag's plain border share.
+PLAIN_CACHE = "plain_border.parquet"
+
+
+def read_measures(path: Path, version: str) -> dict[str, float]:
+    """{sha256: value} measured by an earlier run under ``version`` ({} when none or unreadable)."""
+    try:
+        table = pd.read_parquet(path)
+        table = table[table["version"] == version]
+        return dict(zip(table["sha256"].astype(str), table["value"].astype(float)))
+    except Exception:  # missing, damaged or of another layout: measure again
+        return {}
+
+
+def write_measures(path: Path, version: str, values: dict[str, float]) -> None:
+    """Keep ``values`` for the next run (atomic; unchanged values are not rewritten)."""
+    if not values or read_measures(path, version) == values:
+        return
+    table = pd.DataFrame({"sha256": list(values), "value": list(values.values())})
+    table["version"] = version
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        table.to_parquet(tmp, index=False)
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
 
 
 def skip_changed(images: pd.DataFrame, skipped: dict) -> pd.DataFrame:
@@ -215,16 +246,7 @@ def _run_stages(
         summary.images_found = len(images)
         summary.images_used = int((images["status"] == "ok").sum())
         summary.images_skipped = summary.images_found - summary.images_used
-        reposts = collect.repost_summary(images)
-        for row in reposts.itertuples():
-            summary.notes.append(
-                f"collect: {row.brand}: {row.reposts} of {row.consumer_files} consumer photos are reposts of "
-                f"its own photos ({'left out of' if row.excluded else 'kept in'} consumer shares), "
-                f"e.g. {row.examples}"
-            )
-        summary.tables += write_tables(
-            out, {"images": images, "skipped": collect.skipped_files(images), "reposts": reposts}
-        )
+        summary.tables += write_tables(out, {"images": images, "skipped": collect.skipped_files(images)})
         summary.notes.append(f"collect: {collect.poster_note(images)}")
 
     with timer("embed"):
@@ -262,17 +284,35 @@ def _run_stages(
         from explore import duplicates
 
         images, embeddings, near_notes = duplicates.confirm_near_duplicates(
-            images, embeddings, exclude=getattr(study.images, "near_duplicates", "exclude") == "exclude"
+            images,
+            embeddings,
+            exclude=getattr(study.images, "near_duplicates", "exclude") == "exclude",
+            exclude_reposts=getattr(study.images, "reposts", "exclude") == "exclude",
         )
         summary.notes += near_notes
+        # Reposts are known only now: the same file (collect) and near-copies (confirmed above).
+        reposts = collect.repost_summary(images)
+        for row in reposts.itertuples():
+            near = f"{row.near_copies} near-cop{'y' if row.near_copies == 1 else 'ies'}"
+            summary.notes.append(
+                f"reposts: {row.brand}: {row.reposts} of {row.consumer_files} consumer photos are reposts of "
+                f"its own photos ({row.same_file} same file, {near}; "
+                f"{'left out of' if row.excluded else 'kept in'} consumer shares), e.g. {row.examples}"
+            )
+        summary.tables += write_tables(out, {"reposts": reposts})
 
     with timer("commercial posts"):
         from explore import commercial
 
+        plain_path = out / "cache" / PLAIN_CACHE
+        known_plain = read_measures(plain_path, commercial.PLAIN_VERSION)
         images, embeddings, commercial_notes = commercial.flag_commercial(
             images, embeddings, encoder.encode_texts, mode=getattr(study.images, "commercial_posts", "exclude"),
-            log=log,
+            log=log, known_plain=known_plain,
         )
+        measured = images.loc[images["commercial_plain"].notna(), ["sha256", "commercial_plain"]]
+        known_plain.update(zip(measured["sha256"], measured["commercial_plain"]))
+        write_measures(plain_path, commercial.PLAIN_VERSION, known_plain)
         summary.notes += commercial_notes
         for note in commercial_notes:
             log(note)
@@ -318,7 +358,7 @@ def _run_stages(
         summary.notes += [f"attributes: {note}" for note in attribute_notes]
     # --- end attributes --------------------------------------------------------
 
-    # --- contexts (explore/contexts.py): UMAP + HDBSCAN, names, brand indices ---
+    # --- contexts (explore/contexts/): UMAP + HDBSCAN, names, brand indices ---
     if len(embeddings.image_ids) >= 3:
         with timer("contexts"):
             from explore import contexts
@@ -458,6 +498,41 @@ def read_labels_file(path: Path) -> pd.DataFrame:
     return parse_labels_text(text, where=str(path))
 
 
+def label_attributes_preflight(table: pd.DataFrame, study: Study, labels_path) -> list[str]:
+    """Match the labels file's attribute names with the study's before any photo is read.
+
+    A file that names none of the study's attributes stops the command at once
+    (the usual cause: a labels file of another study, or a renamed attribute);
+    names the study does not have are listed in one line, and their rows are
+    left out later with the other row checks.
+
+    Raises
+    ------
+    StudyError naming the file, the names it has and the study's names.
+    """
+    from explore.attributes.labels import unguard
+
+    if "attribute" not in table.columns:
+        return []  # the row checks name the missing column
+    known = [a.name for a in study.attributes]
+    counts = table["attribute"].astype(str).str.strip().map(unguard).value_counts()
+    counts = counts[counts.index != ""]
+    unknown = [name for name in counts.index if name not in known]
+    if len(counts) and len(unknown) == len(counts):
+        from explore.study import StudyError
+
+        shown = ", ".join(f"'{name}'" for name in unknown[:8]) + (" ..." if len(unknown) > 8 else "")
+        raise StudyError(
+            f"{labels_path}: no label names an attribute of the study; the file names {shown}; "
+            f"the study has {', '.join(repr(k) for k in known) or 'no attributes'} "
+            "(add them to the study, or use --attribute NAME: POSITIVE / NEGATIVE)"
+        )
+    if unknown:
+        listed = ", ".join(f"'{name}' ({counts[name]} row{'s' if counts[name] != 1 else ''})" for name in unknown[:8])
+        return [f"labels: {labels_path}: attributes not in the study, their rows left out: {listed}"]
+    return []
+
+
 def check_labels(study: Study, labels: pd.DataFrame, embeddings, encoder, *, log: Callable[[str], None] = print):
     """Check every labelled attribute (shared by ``explore check`` and ``explore run``).
 
@@ -534,8 +609,9 @@ def check_study(
     """
     labels_path = Path(labels_path)
     table = read_labels_file(labels_path)
-
     preflight(study, weights=weights)
+    for line in label_attributes_preflight(table, study, labels_path):
+        log(line)
     final = Path(study.output)
     with OutputLock(final, "check") as lock:
         for note in lock.notes:

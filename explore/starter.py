@@ -89,7 +89,7 @@ SETTINGS_WRITTEN: dict[str, dict[str, tuple[str, object]]] = {
         "manifest": ("manifest CSV instead of the folder tree (path, brand, source[, category, posted_at, poster])", "photos.csv"),
         "metadata": ("folder tree only: a CSV of path, poster, posted_at and extra columns", "posters.csv"),
         "max_per_poster": ("at most this many photos per poster per brand x source (0 = no cap)", None),
-        "reposts": ("a brand's own photo re-posted in its consumer set: exclude from consumer shares, or keep", None),
+        "reposts": ("a brand's own photo re-posted in its consumer set (the same file or a near-copy): exclude from consumer shares, or keep", None),
         "near_duplicates": ("near-identical pictures within a brand and source count once (exclude) or keep", None),
         "commercial_posts": ("consumer photos that look like shop listings, product shots, screenshots or adverts: exclude from consumer shares, or keep (flagged, counted)", None),
     },

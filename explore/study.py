@@ -38,7 +38,8 @@ class ImagesSettings:
     max_per_poster: at most this many usable photos per poster within each
         brand x source, a seeded sample (0, the default: no cap).
     reposts: what to do with a brand's owned photo found again in its consumer
-        set (same file content): ``exclude`` (default: status ``repost``, so
+        set, the same file or a near-copy (content hash and image vectors,
+        ``explore/duplicates.py``): ``exclude`` (default: status ``repost``, so
         consumer shares describe what consumers posted themselves) or ``keep``
         (counted as a consumer photo too). Either way it is reported.
     near_duplicates: a near-identical picture in the same brand and source

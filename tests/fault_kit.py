@@ -48,7 +48,7 @@ negative = ["outdoors in nature"]
 """
 
 
-def make_tiny_study(folder: Path, output: str = "out", per_cell: int = 2) -> Path:
+def make_tiny_study(folder: Path, output: str = "out", per_cell: int = 2, brands=("Alpha", "Beta")) -> Path:
     """Two brands x two sources x ``per_cell`` generated JPEGs (seeded), a study file; returns it."""
     from PIL import Image, ImageDraw
 
@@ -56,7 +56,7 @@ def make_tiny_study(folder: Path, output: str = "out", per_cell: int = 2) -> Pat
 
     rng = random.Random(15)
     root = folder / "photos"
-    for brand in ("Alpha", "Beta"):
+    for brand in brands:
         for source in ("consumer", "owned"):
             cell = root / brand / source
             cell.mkdir(parents=True, exist_ok=True)
@@ -83,9 +83,19 @@ def explore_args(*args) -> list[str]:
     return [sys.executable, "-m", "explore.cli", "--quiet", *map(str, args)]
 
 
-def run(*args, cwd: Path, pause: str | None = None, timeout: float = 600) -> subprocess.CompletedProcess:
-    return subprocess.run(explore_args(*args), cwd=cwd, env=env(pause), capture_output=True, text=True,
-                          timeout=timeout)
+def run(*args, cwd: Path, pause: str | None = None, timeout: float = 600,
+        importtime: bool = False) -> subprocess.CompletedProcess:
+    """``explore ARGS`` in a new process; with ``importtime`` Python lists every module it
+    imports on stderr (``-X importtime``; ``imported`` reads them, ``error_lines`` skips them)."""
+    e = env(pause)
+    if importtime:
+        e["PYTHONPROFILEIMPORTTIME"] = "1"
+    return subprocess.run(explore_args(*args), cwd=cwd, env=e, capture_output=True, text=True, timeout=timeout)
+
+
+def imported(stderr: str) -> set[str]:
+    """The modules a process imported, from its ``-X importtime`` lines."""
+    return {line.rsplit("|", 1)[-1].strip() for line in stderr.splitlines() if line.startswith("import time:")}
 
 
 def start(*args, cwd: Path, pause: str | None = None) -> subprocess.Popen:
@@ -157,7 +167,7 @@ def run_id(out: Path) -> str:
 
 
 def error_lines(stderr: str) -> list[str]:
-    return [line for line in stderr.splitlines() if line.strip()]
+    return [line for line in stderr.splitlines() if line.strip() and not line.startswith("import time:")]
 
 
 # --------------------------------------------------------------------------
@@ -223,6 +233,7 @@ class Outcome:
     status: int | None = None
     message: str = ""
     intact: bool | None = None  # previous complete results byte-identical
+    imported: set = field(default_factory=set)  # modules the command imported (command_fault only)
     one_run: str = ""  # '' when the folder is one complete run
     leftovers: list[str] = field(default_factory=list)
     next_note: str = ""  # what the next command said about it
@@ -251,14 +262,15 @@ def copy_study(source: Path, target: Path, with_cache: bool = True) -> Path:
     return target / "study.toml"
 
 
-def concurrent_runs(study: Path, out: Path) -> Outcome:
-    """A run paused after collect; a second run on the same study must be refused before writing."""
-    outcome = Outcome("two runs on one study at once")
+def concurrent_runs(study: Path, out: Path, *second_args, name: str = "two runs on one study at once") -> Outcome:
+    """A run paused after collect; a second command (default: another run) on the same study
+    must be refused before writing."""
+    outcome = Outcome(name)
     before = snapshot(out)
     first = start("run", study, cwd=study.parent, pause="collect")
     wait_stopped(first)
     started = time.time()
-    second = run("run", study, cwd=study.parent)
+    second = run(*(second_args or ("run", study)), cwd=study.parent)
     outcome.seconds = time.time() - started
     outcome.status = second.returncode
     outcome.message = " | ".join(error_lines(second.stderr))
@@ -301,10 +313,11 @@ def command_fault(name: str, study: Path, out: Path, *args) -> Outcome:
     outcome = Outcome(name)
     before = snapshot(out)
     started = time.time()
-    done = run(*(args or ("run", study)), cwd=study.parent)
+    done = run(*(args or ("run", study)), cwd=study.parent, importtime=True)
     outcome.seconds = time.time() - started
     outcome.status = done.returncode
     outcome.message = " | ".join(error_lines(done.stderr))
+    outcome.imported = imported(done.stderr)
     outcome.intact = snapshot(out) == before
     outcome.leftovers = leftovers(out) if out.is_dir() else []
     outcome.one_run = one_run(out) if (out / "run.json").is_file() else ""

@@ -24,6 +24,7 @@ HOSTILE_ATTRIBUTE = "<b onmouseover=alert(1)>bold</b>"
 HOSTILE_PROMPT = '"><svg onload=alert(1)>'
 HOSTILE_CONTEXT = "<iframe src=javascript:alert(1)>"
 HOSTILE_FOLDER = "<u>folder</u>"
+FORMULA_BRAND = "=Cinder Gear"  # a spreadsheet would run it as a formula (OWASP "CSV Injection")
 
 ENCODER_ID = "bundled-v1-efficientnet_lite0-minilm-l6-v2-test"
 
@@ -63,7 +64,7 @@ def make_output_folder(
 
     brands = {"Alder Fizz": "drinks", "Brook Cola": "drinks", "Cinder Gear": "outdoor", "Dune Trek": "outdoor"}
     if hostile:
-        brands = {HOSTILE_BRAND: "drinks", "Brook Cola": "drinks", "Cinder Gear": "outdoor", "Dune Trek": "outdoor"}
+        brands = {HOSTILE_BRAND: "drinks", "Brook Cola": "drinks", FORMULA_BRAND: "outdoor", "Dune Trek": "outdoor"}
     brand_names = list(brands)
     contexts = ["beach picnic", "mountain trail", "kitchen table", "night party", "city commute"]
     if hostile:
@@ -229,7 +230,7 @@ def make_output_folder(
             ctx_rows.append(dict(context_id=c, context=name, size=len(members), share=len(members) / n,
                                  name_score=0.3, alternatives=f"{name} outdoors | {name} at home",
                                  exemplars=" ".join(members[:6]), min_cluster_size=5))
-        # As contexts.py writes it: unassigned images as context -1, last.
+        # As explore/contexts/stage.py writes it: unassigned images as context -1, last.
         ctx_rows.append(dict(context_id=-1, context="unassigned", size=int((contexts_of < 0).sum()),
                              share=float((contexts_of < 0).mean()), name_score=np.nan, alternatives="",
                              exemplars="", min_cluster_size=5))

@@ -609,6 +609,7 @@ def labelled_tree(tmp_path_factory):
     (root / "study.toml").write_text(
         'name = "labelled"\noutput = "out"\n[images]\nroot = "images"\n'
         'near_duplicates = "keep"\n'  # the photos are deliberate variants of five photos
+        'reposts = "keep"\n'  # so some consumer variants are near-copies of owned ones: count them all
         '[scoring]\nbootstrap_samples = 100\n'
         '[[attribute]]\nname = "animal"\npositive = ["an animal", "a pet cat"]\n'
         'negative = ["an object", "a landscape"]\n',
@@ -679,7 +680,16 @@ def test_check_command_refuses_bad_inputs(labelled_tree, tmp_path, capsys):
     bad = tmp_path / "bad.csv"
     bad.write_text("image,attribute,label\nAlpha/consumer/photo_00.jpg,glamorous,1\n", encoding="utf-8")
     assert main(["--quiet", "check", study, "--labels", str(bad), "--encoder", "bundled"]) == 2
-    assert "row 2: attribute 'glamorous' is not in the study" in capsys.readouterr().err
+    said = capsys.readouterr().err  # refused before collect, naming what the file and the study have
+    assert "no label names an attribute of the study; the file names 'glamorous'; the study has 'animal'" in said
+    # a file with one known attribute goes on; the unknown one is named up front and its rows left out
+    mixed = tmp_path / "mixed.csv"
+    mixed.write_text("image,attribute,label\nAlpha/consumer/photo_00.jpg,glamorous,1\n"
+                     "Alpha/consumer/photo_00.jpg,animal,1\n", encoding="utf-8")
+    main(["--quiet", "check", study, "--labels", str(mixed), "--encoder", "bundled"])
+    said = capsys.readouterr()
+    assert "attributes not in the study, their rows left out: 'glamorous' (1 row)" in said.out + said.err
+    assert "row 2: attribute 'glamorous' is not in the study" in said.out + said.err
     # The one-line syntax is validated before any model loads; the message names the attribute.
     assert main(["--quiet", "run", study, "--attribute", "sunny: bright"]) == 2
     assert "--attribute 'sunny': expected exactly one '/'" in capsys.readouterr().err

@@ -543,6 +543,81 @@ def test_banded_near_duplicate_search_equals_all_pairs():
         assert got.tolist() == first_close_earlier(values, max_bits), max_bits
 
 
+def test_nearest_owned_hash_search_equals_its_definition():
+    # Reference: for each query, every target compared bit by bit; the smallest
+    # distance within max_bits wins, ties to the lowest target index.
+    def nearest(queries, targets, max_bits):
+        out = []
+        for q in queries:
+            dist = [bin(int(q) ^ int(t)).count("1") for t in targets]
+            best = min(((d, j) for j, d in enumerate(dist) if d <= max_bits), default=None)
+            out.append(best[::-1] if best else (-1, -1))
+        return out
+
+    rng = np.random.default_rng(2)
+    targets = rng.integers(0, 2**63, 120, dtype=np.int64).astype(np.uint64)
+    targets = np.concatenate([targets, targets[:10] ^ np.uint64(0b11), np.zeros(5, np.uint64)])  # ties
+    queries = np.concatenate(
+        [
+            targets[:40] ^ np.uint64(0b10110),  # 3 bits from a target (and 1 or 5 from its copy)
+            rng.integers(0, 2**63, 40, dtype=np.int64).astype(np.uint64),  # mostly far from all
+            np.uint64(1) << np.arange(20, dtype=np.uint64),  # one bit from the zeros
+        ]
+    )
+    for max_bits in (0, 2, 3, 14):
+        index, bits = collect.nearest_partners(queries, targets, max_bits)
+        assert list(zip(index.tolist(), bits.tolist())) == nearest(queries, targets, max_bits), max_bits
+    assert [a.tolist() for a in collect.nearest_partners(queries[:3], targets[:0], 14)] == [[-1] * 3, [-1] * 3]
+
+
+def outside_photo(name: str) -> Image.Image:
+    """A scikit-image sample photo (skimage.data; outside data, not generated here)."""
+    data = pytest.importorskip("skimage.data")
+    return Image.fromarray(getattr(data, name)()).convert("RGB")
+
+
+def reshared(image: Image.Image, path: Path, scale: float = 0.75, quality: int = 60) -> Path:
+    """What a platform does to a re-shared photo: resized and recompressed at a lower JPEG quality."""
+    w, h = image.size
+    return save(image.resize((round(w * scale), round(h * scale)), Image.Resampling.LANCZOS), path, quality=quality)
+
+
+def test_near_copies_of_owned_photos_are_proposed_within_the_brand_only(tmp_path):
+    """Originals: scikit-image's astronaut and chelsea photos. Alpha owns the
+    astronaut, Beta the cat. A resized, recompressed astronaut in Alpha's consumer
+    set is proposed as a near-copy of Alpha's photo (a repost only once the image
+    vectors confirm it, tests/test_duplicates.py); the same kind of copy of Beta's
+    cat is proposed in Beta's consumer set and not in Alpha's."""
+    root = tmp_path / "photos"
+    launch = save(outside_photo("astronaut"), root / "Alpha/owned/launch.jpg", quality=92)
+    reshared(outside_photo("astronaut"), root / "Alpha/consumer/fan_copy.jpg")
+    shutil.copy(launch, root / "Alpha/consumer/fan_same_file.jpg")
+    save(outside_photo("chelsea"), root / "Beta/owned/cat.jpg", quality=92)
+    reshared(outside_photo("chelsea"), root / "Alpha/consumer/beta_cat.jpg")
+    reshared(outside_photo("chelsea"), root / "Beta/consumer/cat_copy.jpg")
+    for reposts in ("exclude", "keep"):
+        table = collect_images(root, progress=False, reposts=reposts)
+        launch_id = row(table, "Alpha/owned/launch.jpg")["image_id"]
+        copy = row(table, "Alpha/consumer/fan_copy.jpg")
+        assert copy["status"] == "ok" and copy["repost_of"] == ""  # not yet: the vectors decide
+        assert copy["near_repost_of"] == launch_id and 0 <= copy["near_repost_bits"] <= collect.NEAR_DUPLICATE_BITS
+        same = row(table, "Alpha/consumer/fan_same_file.jpg")  # exact reposts stay as they were
+        assert same["status"] == ("repost" if reposts == "exclude" else "ok") and same["repost_of"] == launch_id
+        assert same["near_repost_of"] == "" and same["near_repost_bits"] == -1
+        assert row(table, "Alpha/consumer/beta_cat.jpg")["near_repost_of"] == ""  # Beta's photo, not Alpha's
+        cat = row(table, "Beta/consumer/cat_copy.jpg")
+        assert cat["near_repost_of"] == row(table, "Beta/owned/cat.jpg")["image_id"]
+        assert (table.loc[table["source"] == "owned", "near_repost_of"] == "").all()
+    text = summarise(table)
+    assert "1 consumer photo(s) of 1 brand(s) are reposts of the brand's own photos (1 same file, 0 near-copies" in text
+    assert "2 consumer photo(s) proposed by the content hash as near-copies" in text
+    # Before the vectors confirm anything, the per-brand summary holds the exact repost only.
+    report = collect.repost_summary(table)
+    assert report[["brand", "reposts", "same_file", "near_copies"]].to_dict("records") == [
+        dict(brand="Alpha", reposts=1, same_file=1, near_copies=0)
+    ]
+
+
 def test_documents_beside_the_brand_folders_are_not_images(tmp_path):
     # `explore init photos/` writes photos/study.toml; a manifest or notes may sit
     # there too. Those are not listed; a document deeper in the tree still is.
@@ -646,3 +721,31 @@ def test_study_keys_for_posters_reach_collect(tmp_path):
         study_from_dict({"images": {"root": "photos", "max_per_poster": -1}}, tmp_path / "study.toml")
     with pytest.raises(StudyError, match="exclude each other"):
         study_from_dict({"images": {"manifest": "m.csv", "metadata": "posters.csv"}}, tmp_path / "study.toml")
+
+
+def test_headers_of_manifest_sidecar_and_survey_are_case_insensitive(tmp_path):
+    # One rule for every CSV a user writes by hand (as the labels file): header names are
+    # matched whatever their case and surrounding spaces.
+    from PIL import Image
+
+    from explore.compare import read_survey
+
+    for rel in ("Alba/consumer/a.jpg", "Alba/owned/b.jpg"):
+        (tmp_path / rel).parent.mkdir(parents=True, exist_ok=True)
+        Image.new("RGB", (40, 30), (200, 30, 30) if "a.jpg" in rel else (30, 30, 200)).save(tmp_path / rel)
+    manifest = tmp_path / "manifest.csv"
+    manifest.write_text(" PATH ,Brand,SOURCE,Poster,Posted_At\nAlba/consumer/a.jpg,Alba,consumer,p1,2024-05-01\n"
+                        "Alba/owned/b.jpg,Alba,owned,p2,2024-05-02\n", encoding="utf-8")
+    table = collect_images(manifest=manifest, progress=False).set_index("relpath")
+    assert (table["status"] == "ok").all() and table.loc["Alba/consumer/a.jpg", "poster"] == "p1"
+    assert table.loc["Alba/owned/b.jpg", "posted_at"].startswith("2024-05-02")
+
+    side = tmp_path / "posters.csv"
+    side.write_text("Path,POSTER\nAlba/consumer/a.jpg,p9\n", encoding="utf-8")
+    tree = collect_images(root=tmp_path, metadata=side, progress=False, exclude=(manifest, side)).set_index("relpath")
+    assert tree.loc["Alba/consumer/a.jpg", "poster"] == "p9"
+
+    survey = tmp_path / "survey.csv"
+    survey.write_text("Brand , ATTRIBUTE,Score\nAlba,rugged,4.5\n", encoding="utf-8")
+    read = read_survey(survey)
+    assert read.loc[0, "brand"] == "Alba" and read.loc[0, "attribute"] == "rugged" and read.loc[0, "score"] == 4.5

@@ -256,3 +256,55 @@ def test_demo_report_and_tables_show_weak_names_as_numbers(demo_run):
         for name in named_weak:
             if f"“{name}”" in text:
                 assert "no confident name" in text
+
+
+def test_edits_in_a_real_run_reach_every_table_and_the_report(demo_run, tmp_path):
+    """`explore run` of the demo study with [[contexts.edits]] (a rename by image, a merge and a
+    drop by number), on a copy of the demo's output folder (its cache: nothing is embedded)."""
+    import shutil
+    from pathlib import Path
+
+    from explore.cli import main
+
+    repo = Path(__file__).resolve().parent.parent
+    demo = Path(demo_run)
+    before = pd.read_parquet(demo / "image_contexts.parquet").merge(
+        pd.read_parquet(demo / "images.parquet")[["image_id", "relpath"]], on="image_id")
+    sizes = before[before.context_id > 0].groupby("context_id").size().sort_values()
+    renamed, merged, target, dropped = sizes.index[-1], sizes.index[0], sizes.index[-2], sizes.index[1]
+    anchor = before[before.context_id == renamed].sort_values("image_id").relpath.iloc[0]
+    out = tmp_path / "out"
+    shutil.copytree(demo / "cache", out / "cache", ignore=shutil.ignore_patterns("lock", "thumbnails_*"))
+    text = (repo / "demo_images" / "study.toml").read_text(encoding="utf-8")
+    for old, new in (('output = "../outputs/demo"', f'output = "{out}"'),
+                     ('manifest = "manifest.csv"', f'manifest = "{repo / "demo_images" / "manifest.csv"}"'),
+                     ('file = "survey.csv"', f'file = "{repo / "demo_images" / "survey.csv"}"'),
+                     ('file = "labels.csv"', f'file = "{repo / "demo_images" / "labels.csv"}"')):
+        assert old in text
+        text = text.replace(old, new)
+    text += (f'\n[[contexts.edits]]\nimage = "{anchor}"\nname = "our own name"\n'
+             f"\n[[contexts.edits]]\ncontext = {merged}\nmerge_into = {target}\n"
+             f"\n[[contexts.edits]]\ncontext = {dropped}\ndrop = true\n")
+    study = tmp_path / "study.toml"
+    study.write_text(text, encoding="utf-8")
+    assert main(["--quiet", "run", str(study), "--encoder", "bundled"]) == 0
+
+    after = pd.read_parquet(out / "image_contexts.parquet").set_index("image_id")
+    by_demo = before.set_index("image_id")
+    ids = lambda c: by_demo.index[by_demo.context_id == c]  # noqa: E731
+    assert (after.loc[ids(renamed), "context"] == "our own name").all()
+    assert after.loc[ids(merged), "context_id"].nunique() == 1
+    assert after.loc[ids(merged), "context_id"].iloc[0] == after.loc[ids(target), "context_id"].iloc[0]
+    assert (after.loc[ids(dropped), "context_id"] == -1).all()
+    contexts = pd.read_csv(out / "contexts.csv")
+    row = contexts[contexts.context == "our own name"]
+    assert len(row) == 1 and row.name_source.iloc[0] == "analyst"
+    assert len(contexts[contexts.context_id > 0]) == len(sizes) - 2
+    counts = pd.read_parquet(out / "brand_contexts.parquet")
+    merged_id = after.loc[ids(target), "context_id"].iloc[0]
+    all_rows = counts[(counts.source == "all") & (counts.context_id == merged_id)]
+    assert all_rows["count"].sum() == len(ids(merged)) + len(ids(target))  # counts after the merge
+    edits = pd.read_csv(out / "context_edits.csv")
+    assert edits.action.tolist() == ["rename", "merge", "drop"]
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "our own name" in page and "named by the analyst (study file)" in page

@@ -249,7 +249,7 @@ def test_stability_ari_is_on_images_assigned_in_both(monkeypatch):
         return ctx.ContextFit(other[: len(vectors)], np.ones(len(vectors)), np.zeros((len(vectors), 2)),
                               np.zeros((len(vectors), 2)))
 
-    monkeypatch.setattr(ctx, "find_contexts", fake_fit)
+    monkeypatch.setattr(ctx.fit, "find_contexts", fake_fit)  # where context_stability looks it up
     st = ctx.context_stability(np.ones((11, 4)), main, ContextSettings(), seed=3).iloc[0]
     assert (st["refit_seed"], st["both_assigned"], st["main_contexts"], st["refit_contexts"]) == (4, 8, 3, 3)
     assert st["ari"] == pytest.approx(1.0, abs=1e-12)

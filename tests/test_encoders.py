@@ -328,6 +328,61 @@ def test_clip_id_changes_with_weights(random_clip, clip_encoder, tmp_path):
     assert encoder.logit_scale == pytest.approx(50.0, rel=1e-5)
 
 
+def test_clip_loads_its_model_only_when_needed(random_clip, tmp_path, monkeypatch):
+    # The first use of given weights loads them (a bad file fails at once) and
+    # notes what a run needs; a later encoder for the same weights loads the
+    # model only for an image or a text not embedded before. Reference for the
+    # vectors: open_clip's own encode_image / encode_text (Radford et al., 2021).
+    import open_clip
+
+    from explore.encoders import clip as clip_mod
+    from explore.encoders import text_cache
+
+    monkeypatch.setenv("EXPLORE_MODEL_CACHE", str(tmp_path / "models"))
+    monkeypatch.setattr(text_cache, "_MEMORY", {})
+    model, preprocess, path = random_clip
+    first = clip_mod.ClipEncoder("ViT-B-32", weights=path)
+    assert first._net is not None
+    texts = ["a photo of a cat", "a sunny beach"]
+    first_texts = first.encode_texts(texts)
+
+    later = clip_mod.ClipEncoder("ViT-B-32", weights=path)
+    assert later._net is None, "the model was loaded although its facts were noted"
+    assert (later.id, later.input_size, later.embed_dim) == (first.id, first.input_size, first.embed_dim)
+    assert later.logit_scale == first.logit_scale
+    np.testing.assert_array_equal(later.encode_texts(texts[::-1]), first_texts[::-1])
+    assert later._net is None, "cached texts loaded the model"
+    with torch.no_grad():
+        reference = model.encode_text(open_clip.get_tokenizer("ViT-B-32")(["a rainy street"]))
+    reference = (reference / reference.norm(dim=-1, keepdim=True)).numpy()
+    np.testing.assert_allclose(later.encode_texts(["a rainy street"]), reference, atol=1e-5)  # a new text loads it
+    assert later._net is not None
+    photo = sample_photos()[:1]
+    with torch.no_grad():
+        image_ref = model.encode_image(torch.stack([preprocess(im) for im in photo]))
+    image_ref = (image_ref / image_ref.norm(dim=-1, keepdim=True)).numpy()
+    np.testing.assert_allclose(later.encode_images(torch.stack([later.preprocess(im) for im in photo]))["joint"],
+                               image_ref, atol=1e-5)
+
+
+def test_clip_refuses_noted_facts_that_no_longer_hold(random_clip, tmp_path, monkeypatch):
+    import json
+
+    from explore.encoders import clip as clip_mod
+
+    monkeypatch.setenv("EXPLORE_MODEL_CACHE", str(tmp_path / "models"))
+    _, _, path = random_clip
+    first = clip_mod.ClipEncoder("ViT-B-32", weights=path)
+    noted = clip_mod.facts_path(first._facts_key())
+    record = json.loads(noted.read_text())
+    record["facts"]["logit_scale"] = 50.0
+    noted.write_text(json.dumps(record))
+    later = clip_mod.ClipEncoder("ViT-B-32", weights=path)
+    assert later.logit_scale == 50.0 and later._net is None
+    with pytest.raises(EncoderUnavailable, match="differs from what was noted"):
+        later.encode_texts(["a text never embedded"])
+
+
 def test_auto_takes_clip_when_weights_are_given(random_clip, clean_home):
     _, _, path = random_clip
     encoder, notice = load_encoder("auto", weights=path)

@@ -153,3 +153,43 @@ def test_sheet_label_reload_export_check(demo_run, tmp_path, capsys):
     assert table["sampled"].str.contains("near the decision boundary").all()
     # The check counts only the random labels (24 per attribute, one unsure left out of the first).
     assert sorted(table["n"].tolist()) == [23] + [24] * 5
+
+
+@pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian chromium is not installed (apt-get install chromium)")
+def test_export_guards_formulas_and_the_reader_takes_the_guard_off(tmp_path):
+    # A brand or attribute named like a spreadsheet formula must not run when the
+    # exported CSV is opened in a spreadsheet (OWASP "CSV Injection": a leading
+    # apostrophe), and explore's label reader must still match the names.
+    sync_api = pytest.importorskip("playwright.sync_api", reason="playwright is not installed")
+    import json
+    from importlib import resources
+
+    from explore.attributes.labels import read_labels
+
+    attribute, stratum = "=HYPERLINK(\"http://x\",\"y\")", "+Brand | consumer"
+    data = {"sheet": "s1", "seed": 3, "graded": False,
+            "items": [{"id": "img1", "name": "a.jpg", "brand": "+Brand", "source": "consumer", "sample": "random",
+                       "stratum": stratum, "stratumSize": 5, "drawn": 1, "src": ""}],
+            "attributes": [{"name": attribute, "positive": ["p"], "negative": ["n"]}]}
+    template = resources.files("explore").joinpath("data/labelsheet.html").read_text(encoding="utf-8")
+    page_path = tmp_path / "sheet.html"
+    page_path.write_text(template.replace("/*SHEET_DATA*/null", json.dumps(data).replace("<", "\\u003c")),
+                         encoding="utf-8")
+    with sync_api.sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=str(CHROMIUM), args=["--no-sandbox"])
+        page = browser.new_context(accept_downloads=True).new_page()
+        page.goto(page_path.as_uri())
+        page.keyboard.press("y")
+        with page.expect_download() as info:
+            page.locator("#export").click()
+        exported = tmp_path / "labels.csv"
+        info.value.save_as(exported)
+        browser.close()
+    raw = pd.read_csv(exported, dtype=str, keep_default_na=False)
+    assert raw.loc[0, "attribute"] == "'" + attribute and raw.loc[0, "stratum"] == "'" + stratum
+    images = pd.DataFrame([dict(image_id="img1", path=str(tmp_path / "a.jpg"), relpath="a.jpg", brand="+Brand",
+                                source="consumer", status="ok")])
+    labels, warnings = read_labels(raw, images, [attribute], where="labels.csv")
+    assert warnings == []
+    assert labels["attribute"].tolist() == [attribute] and labels["stratum"].tolist() == [stratum]
+    assert labels["label"].tolist() == [1]

@@ -135,12 +135,42 @@ def test_overview_states_encoder_quality_and_cautions(built):
     assert "2026-01-02 03:04:05 UTC" in text  # run date from run.json
 
 
+def test_offline_fallback_report_says_what_bundled_sees_and_how_to_get_clip(tmp_path):
+    # The run of an `auto` study that fell back to bundled: the report carries the notice
+    # `load_encoder` printed, says what the offline encoder can and cannot see, and how to
+    # get the clip model (explore fetch-model, README "Offline machines").
+    from explore.encoders import fallback_notice
+
+    out = synth.make_output_folder(tmp_path / "fallback", 20)
+    notice = fallback_notice("ViT-B-32-256", "datacomp_s34b_b86k", "HF_HUB_OFFLINE is set", "the Hugging Face cache")
+    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    run["encoder_notice"] = notice
+    (out / "run.json").write_text(json.dumps(run), encoding="utf-8")
+    card = re.search(r'<div class="card card-encoder card-lower">(.*?)</div>', write_report(out).read_text(), re.S)
+    assert card, "no lower-fidelity encoder card"
+    card = html.unescape(card.group(1))
+    assert "It can see objects, animals, food, drinks" in card
+    assert "it cannot see mood, style, light, colour schemes, facial expressions, logos or text" in card
+    assert "explore fetch-model" in card and "Offline machines" in card
+    assert notice in card and "auto chose bundled" in card
+
+
 def test_script_json_cannot_close_its_script_block():
     value = {"a": "</script><script>alert(1)</script>", "b": "x & y > z", "c": "line\u2028sep", "n": [1, 2.5, None]}
     text = script_json(value)
     assert "<" not in text and ">" not in text and "&" not in text and "\u2028" not in text
     # The escapes are plain JSON (RFC 8259 \uXXXX), so a standard parser reads the value back unchanged.
     assert json.loads(text) == value
+
+
+def test_findings_csv_guards_formula_cells(hostile):
+    # findings.csv is written by the report, not by the run: it must carry the same
+    # formula guard as every table (OWASP "CSV Injection": a leading apostrophe).
+    out, _, _ = hostile
+    findings = pd.read_csv(Path(out) / "findings.csv", dtype=str, keep_default_na=False)
+    assert "'" + synth.FORMULA_BRAND in set(findings["brand"])
+    assert synth.FORMULA_BRAND in set(pd.read_parquet(Path(out) / "findings.parquet")["brand"])  # exact
+    assert not findings["brand"].str.match(r"[=+@\t\r]").any()
 
 
 def test_hostile_names_never_appear_as_markup(hostile):

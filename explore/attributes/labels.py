@@ -71,8 +71,22 @@ def parse_labels_text(text: str, where: str = "labels") -> pd.DataFrame:
 #: Statuses whose labels are dropped with their own sentence (rather than remapped to a kept image).
 LEFT_OUT = {
     "commercial": "was left out as a commercial post (images.commercial_posts = 'exclude')",
-    "repost": "is a repost of the brand's own photo, left out of consumer shares (images.reposts = 'exclude')",
+    "repost": "is a repost of the brand's own photo (the same file or a near-copy), left out of consumer shares "
+    "(images.reposts = 'exclude')",
 }
+
+
+def unguard(text: str) -> str:
+    """A cell as written before the spreadsheet formula guard: ``'=x`` -> ``=x``.
+
+    The labelling sheet's export and explore's CSV tables put an apostrophe
+    before a text cell starting with = + - @ tab or CR (OWASP "CSV
+    Injection"); reading it back, the apostrophe is taken off again so that an
+    attribute or brand named "=..." still matches.
+    """
+    if len(text) > 1 and text[0] == "'" and text[1] in "=+-@\t\r":
+        return text[1:]
+    return text
 
 
 def read_labels(
@@ -127,8 +141,8 @@ def read_labels(
     out, warnings = [], []
     unsure = 0
     for row_number, row in enumerate(table.to_dict("records"), start=2):  # row 1 is the header
-        image = str(row.get("image", "")).strip()
-        attribute = str(row.get("attribute", "")).strip()
+        image = unguard(str(row.get("image", "")).strip())
+        attribute = unguard(str(row.get("attribute", "")).strip())
         raw_label = str(row.get("label", "")).strip().lower()
         if attribute not in known:
             warnings.append(
@@ -188,7 +202,7 @@ def read_labels(
             continue
         out.append((
             image_id, attribute, 1 if raw_label in YES else 0, grade, sample,
-            str(row.get("stratum", "")).strip(), _number(row.get("stratum_size")), _number(row.get("drawn")),
+            unguard(str(row.get("stratum", "")).strip()), _number(row.get("stratum_size")), _number(row.get("drawn")),
             str(row.get("seed", "")).strip(), str(row.get("sheet", "")).strip(), row_number,
         ))
     columns = ["image_id", "attribute", "label", "grade", "sample", "stratum", "stratum_size", "drawn",

@@ -65,7 +65,12 @@ Visually
 near-identical images within one brand x source (a 64-bit difference hash of
 the content box, ``content_hash``, within ``NEAR_DUPLICATE_BITS``) are
 proposed in ``near_duplicate_of``; ``explore.duplicates`` confirms them with
-the image vectors after embed.
+the image vectors after embed. A re-share is seldom byte-identical, so each
+used consumer photo that is not an exact repost is also proposed as a
+near-copy of the closest used owned photo of its brand within the same bits
+(``near_repost_of``, ``near_repost_bits``; after the poster cap, since both
+photos must be embedded); ``explore.duplicates`` confirms it by the same rule
+and then makes it a repost like an exact one.
 
 Decoding (``open_rgb``) reads JPEG (and MPO), PNG, WebP, GIF (first frame),
 BMP and TIFF, applies the EXIF orientation, and converts palette, CMYK, 16-bit
@@ -88,6 +93,9 @@ from explore.collect.flags import (  # noqa: F401
     _flag_duplicates,
     _flag_near_duplicates,
     _flag_reposts,
+    _propose_near_reposts,
+    is_near_copy,
+    repost_description,
     repost_summary,
 )
 from explore.collect.hashing import (  # noqa: F401
@@ -99,6 +107,7 @@ from explore.collect.hashing import (  # noqa: F401
     content_hash,
     difference_hash,
     near_duplicate_partners,
+    nearest_partners,
 )
 from explore.collect.sources import (  # noqa: F401
     COLUMNS,
@@ -140,8 +149,11 @@ __all__ = [
     "content_hash",
     "difference_hash",
     "near_duplicate_partners",
+    "nearest_partners",
     "open_rgb",
     "poster_note",
+    "is_near_copy",
+    "repost_description",
     "repost_summary",
     "skipped_files",
     "summarise",

@@ -1,4 +1,4 @@
-"""Collect: difference hashes of images and near-duplicate proposals between them."""
+"""Collect: difference hashes of images, near-duplicate and near-copy repost proposals between them."""
 
 from __future__ import annotations
 
@@ -93,6 +93,33 @@ def near_duplicate_partners(values: np.ndarray, max_bits: int) -> np.ndarray:
         for first, size in zip(starts[sizes > _SMALL_GROUP], sizes[sizes > _SMALL_GROUP]):
             _closest_earlier(values, order[first : first + size], max_bits, best)
     return np.where(best < n, best, -1)
+
+
+def nearest_partners(queries: np.ndarray, targets: np.ndarray, max_bits: int) -> tuple[np.ndarray, np.ndarray]:
+    """For each query hash, the closest target hash within ``max_bits`` bits: (index, bits), -1 where none.
+
+    Ties go to the lowest target index (table order), so the choice is
+    deterministic. Every pair is compared, in blocks of about 4 million: at 14
+    bits the bands of ``near_duplicate_partners`` are 4 or 5 bits wide and
+    would pass nearly every pair anyway (20,000 x 20,000 hashes take about a
+    second this way).
+    """
+    queries = np.asarray(queries, dtype=np.uint64)
+    targets = np.asarray(targets, dtype=np.uint64)
+    nq, nt = len(queries), len(targets)
+    index = np.full(nq, -1, dtype=np.int64)
+    bits = np.full(nq, -1, dtype=np.int64)
+    if nq == 0 or nt == 0 or max_bits < 0:
+        return index, bits
+    block = max(1, 4_000_000 // nt)
+    for start in range(0, nq, block):
+        dist = _popcount(queries[start : start + block, None] ^ targets[None, :])
+        closest = np.argmin(dist, axis=1)  # the first of equal distances: the lowest index
+        nearest = dist[np.arange(len(closest)), closest].astype(np.int64)
+        hit = nearest <= max_bits
+        index[start : start + block] = np.where(hit, closest, -1)
+        bits[start : start + block] = np.where(hit, nearest, -1)
+    return index, bits
 
 
 _SMALL_GROUP = 64

@@ -32,6 +32,8 @@ COLUMNS = [
     "duplicate_of",
     "near_duplicate_of",
     "repost_of",
+    "near_repost_of",
+    "near_repost_bits",
 ]
 _CLUTTER = {".ds_store", "thumbs.db", "desktop.ini"}
 _ROOT_DOCUMENTS = {".toml", ".csv", ".json", ".md", ".txt"}

@@ -10,7 +10,14 @@ from pathlib import Path
 import pandas as pd
 
 from explore.collect.decode import MAX_PIXELS, ImageProblem, _decode, _read_bytes
-from explore.collect.flags import _cap_posters, _flag_duplicates, _flag_near_duplicates, _flag_reposts
+from explore.collect.flags import (
+    _cap_posters,
+    _flag_duplicates,
+    _flag_near_duplicates,
+    _flag_reposts,
+    _propose_near_reposts,
+    is_near_copy,
+)
 from explore.collect.hashing import NEAR_DUPLICATE_BITS, content_hash
 from explore.collect.sources import COLUMNS, CollectError, _apply_sidecar, _Entry, _image_id, _manifest_entries, _tree_entries
 
@@ -44,7 +51,9 @@ def collect_images(
     progress : show a progress bar (count, rate, time left) while reading.
     max_pixels : larger images are refused as ``too_large``.
     near_duplicate_bits : Hamming distance (of 64 bits) up to which two
-        difference hashes count as near-identical.
+        content hashes count as near-identical: near-duplicates within a brand
+        x source, and near-copy reposts (a consumer photo and the brand's
+        owned photo).
     workers : threads reading and hashing files (default: the CPUs available).
     metadata : optional sidecar CSV for a folder tree (path, poster, posted_at,
         extra columns; see the module docstring).
@@ -113,6 +122,8 @@ def collect_images(
             "duplicate_of": "",
             "near_duplicate_of": "",
             "repost_of": "",
+            "near_repost_of": "",
+            "near_repost_bits": -1,
         }
         result = by_entry.get(id(entry))
         if result is not None:
@@ -133,12 +144,16 @@ def collect_images(
         table[name] = table[name].fillna("").astype(str)
     table["width"] = table["width"].astype("int64")
     table["height"] = table["height"].astype("int64")
+    table["near_repost_bits"] = table["near_repost_bits"].astype("int64")
     if reposts not in ("exclude", "keep"):
         raise ValueError(f"reposts must be 'exclude' or 'keep', got {reposts!r}")
     _flag_duplicates(table)
     _flag_reposts(table, exclude=reposts == "exclude")
     _flag_near_duplicates(table, hashes, near_duplicate_bits)
     _cap_posters(table, max_per_poster, seed)
+    # After the cap: a near-copy is confirmed with the vectors of both photos,
+    # and only rows still used are embedded.
+    _propose_near_reposts(table, hashes, near_duplicate_bits)
     return table
 
 
@@ -248,9 +263,18 @@ def summarise(table: pd.DataFrame, examples: int = 5) -> str:
     if reposted.any():
         brands = table.loc[reposted, "brand"].nunique()
         excluded = int((table["status"] == "repost").sum())
+        near_copies = int(is_near_copy(table).sum())
+        kinds = f"{int(reposted.sum()) - near_copies} same file, {near_copies} near-cop{'y' if near_copies == 1 else 'ies'}"
         lines.append(
             f"{int(reposted.sum())} consumer photo(s) of {brands} brand(s) are reposts of the brand's own "
-            + ("photos (left out of consumer shares)" if excluded else "photos (kept in consumer shares)")
+            f"photos ({kinds}; "
+            + ("left out of consumer shares)" if excluded else "kept in consumer shares)")
+        )
+    proposed = table["near_repost_of"].fillna("") != "" if "near_repost_of" in table else reposted & False
+    if proposed.any():
+        lines.append(
+            f"{int(proposed.sum())} consumer photo(s) proposed by the content hash as near-copies of the brand's "
+            "own photos (a repost when the image vectors confirm it after embed)"
         )
     near = int((table["near_duplicate_of"] != "").sum())
     if near:

@@ -14,6 +14,11 @@ vector in the sentence encoder's space.
 Embedding is a pure function of a batch: ``preprocess`` one decoded image into
 a tensor, stack, then ``encode_images``. That keeps decoding (I/O) outside and
 lets the batch step run anywhere.
+
+Building an encoder is cheap: it settles its ``id`` (from the weights' digests)
+and the few numbers scoring needs, and loads a model only when it is first
+used. A re-run whose image vectors are all cached, and whose prompts were
+embedded before (``text_cache``), loads no model at all.
 """
 
 from __future__ import annotations
@@ -47,6 +52,16 @@ def file_digest(path: Path) -> str:
     """
     st = os.stat(path)
     return _file_digest(str(path), st.st_size, st.st_mtime_ns)
+
+
+def model_cache_dir() -> Path:
+    """Where encoders keep what they derive from their models between runs (label and text
+    vectors, model facts, exported towers): ``EXPLORE_MODEL_CACHE``, else
+    ``$XDG_CACHE_HOME/explore``, else ``~/.cache/explore``."""
+    if os.environ.get("EXPLORE_MODEL_CACHE"):
+        return Path(os.environ["EXPLORE_MODEL_CACHE"]).expanduser()
+    xdg = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(xdg) / "explore"
 
 
 class EncoderUnavailable(RuntimeError):

@@ -23,16 +23,17 @@ importing this module stays cheap.
 
 from __future__ import annotations
 
-import functools
 import hashlib
 import os
 import threading
+from functools import lru_cache
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
 
-from explore.encoders.base import EncoderUnavailable, file_digest
+from explore.encoders.base import EncoderUnavailable, file_digest, model_cache_dir
+from explore.encoders.text_cache import encode_texts_cached
 
 if TYPE_CHECKING:
     import torch
@@ -83,6 +84,10 @@ BUNDLED_LOGIT_BIAS = 0.0
 
 IMAGE_ARCH = "efficientnet_lite0"
 TEXT_MODEL = "all-MiniLM-L6-v2"
+#: Side of the square model input (timm's eval config for efficientnet_lite0; checked when the model loads).
+IMAGE_INPUT_SIZE = 224
+#: Dimension of all-MiniLM-L6-v2's sentence vectors (checked when the model loads).
+TEXT_DIM = 384
 
 
 def image_weights_path() -> Path:
@@ -120,12 +125,32 @@ def class_synonyms(description: str) -> list[str]:
     return [part.strip() for part in description.split(",") if part.strip()]
 
 
-def imagenet_class_names() -> list[str]:
-    """The 1000 ImageNet-1k class descriptions from timm's ``ImageNetInfo``, in index order."""
-    from timm.data import ImageNetInfo
+@lru_cache(maxsize=1)
+def imagenet_class_names() -> tuple[str, ...]:
+    """The 1000 ImageNet-1k class descriptions of timm's ``ImageNetInfo``, in index order.
 
-    info = ImageNetInfo()
-    return [info.index_to_description(i) for i in range(info.num_classes())]
+    Read from the two files ``ImageNetInfo`` reads (``timm/data/_info``: the
+    synset ids in class order, and each synset's lemmas), without importing
+    timm, whose import costs seconds a cached re-run should not pay. Falls back
+    to ``ImageNetInfo`` itself when the files are not where timm keeps them.
+    """
+    import csv
+    import importlib.util
+
+    spec = importlib.util.find_spec("timm")
+    info = Path(list(spec.submodule_search_locations)[0]) / "data" / "_info" if spec and spec.submodule_search_locations else None
+    try:
+        synsets = (info / "imagenet_synsets.txt").read_text(encoding="utf-8").splitlines()
+        lemmas = dict(csv.reader((info / "imagenet_synset_to_lemma.txt").read_text(encoding="utf-8").splitlines(), delimiter="\t"))
+        names = tuple(lemmas[s] for s in synsets)
+    except (TypeError, OSError, KeyError, ValueError):
+        from timm.data import ImageNetInfo
+
+        table = ImageNetInfo()
+        names = tuple(table.index_to_description(i) for i in range(table.num_classes()))
+    if len(names) != 1000:
+        raise EncoderUnavailable(f"bundled encoder: timm lists {len(names)} ImageNet-1k classes, expected 1000")
+    return names
 
 
 #: The WordNet 3.0 parent of every ImageNet class, one "wnid<TAB>phrase" line per class in
@@ -133,23 +158,40 @@ def imagenet_class_names() -> list[str]:
 CLASS_PHRASES_FILE = Path(__file__).resolve().parents[1] / "data" / "imagenet_class_phrases.tsv"
 
 
-@functools.lru_cache(maxsize=1)
+def imagenet_wnids() -> tuple[str, ...]:
+    """The 1000 ImageNet-1k synset ids (wnids) in timm's class order.
+
+    Read from ``timm/data/_info/imagenet_synsets.txt`` (the file ``ImageNetInfo``
+    reads) without importing timm, like ``imagenet_class_names``; ``ImageNetInfo``
+    itself when the file is not there.
+    """
+    import importlib.util
+
+    spec = importlib.util.find_spec("timm")
+    info = Path(list(spec.submodule_search_locations)[0]) / "data" / "_info" if spec and spec.submodule_search_locations else None
+    try:
+        return tuple((info / "imagenet_synsets.txt").read_text(encoding="utf-8").split())
+    except (TypeError, OSError):
+        from timm.data import ImageNetInfo
+
+        table = ImageNetInfo()
+        return tuple(table.index_to_label_name(i) for i in range(table.num_classes()))
+
+
+@lru_cache(maxsize=1)
 def imagenet_class_phrases() -> tuple[str, ...]:
     """The 1000 "first name, a kind of parent" phrases of ``CLASS_PHRASES_FILE``, in index order.
 
-    The file's wnids are checked against timm's ``ImageNetInfo``, so a change of
-    class order there cannot pair a class with another's phrase.
+    The file's wnids are checked against timm's class order (``imagenet_wnids``),
+    so a change of class order there cannot pair a class with another's phrase.
     """
-    from timm.data import ImageNetInfo
-
     rows = []
     with open(CLASS_PHRASES_FILE, encoding="utf-8") as fh:
         for line in fh:
             if line.strip() and not line.startswith("#"):
                 wnid, _, phrase = line.rstrip("\n").partition("\t")
                 rows.append((wnid, phrase))
-    info = ImageNetInfo()
-    expected = [info.index_to_label_name(i) for i in range(info.num_classes())]
+    expected = list(imagenet_wnids())
     if [wnid for wnid, _ in rows] != expected or not all(phrase for _, phrase in rows):
         raise EncoderUnavailable(
             f"bundled encoder: {CLASS_PHRASES_FILE} does not list timm's {len(expected)} ImageNet classes in order; "
@@ -195,12 +237,8 @@ def soften(probabilities: np.ndarray, temperature: float) -> np.ndarray:
 
 
 def label_cache_dir() -> Path:
-    """Where the label embeddings are kept between runs: ``EXPLORE_MODEL_CACHE``,
-    else ``$XDG_CACHE_HOME/explore``, else ``~/.cache/explore``."""
-    if os.environ.get("EXPLORE_MODEL_CACHE"):
-        return Path(os.environ["EXPLORE_MODEL_CACHE"]).expanduser()
-    xdg = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
-    return Path(xdg) / "explore"
+    """Where the label embeddings are kept between runs (``base.model_cache_dir``)."""
+    return model_cache_dir()
 
 
 def _read_vectors(path: Path, shape: tuple[int, int]) -> np.ndarray | None:
@@ -231,6 +269,8 @@ _MODELS: dict = {}
 _LABEL_EMBEDDINGS: dict = {}
 # encode_images may run in several threads at once; the label embeddings are made once.
 _LABEL_LOCK = threading.Lock()
+# Models are loaded on first use, possibly from several embedding threads at once.
+_MODEL_LOCK = threading.Lock()
 
 
 def imagenet_model():
@@ -300,29 +340,35 @@ def fold_batch_norms(model):
 
 
 def _load_image_model():
-    if "image" not in _MODELS:
-        import torch
+    with _MODEL_LOCK:
+        if "image" not in _MODELS:
+            import torch
 
-        # Folded batch norms (a third less CPU time) and channels-last memory
-        # (about twice as fast on CPU; measured 28 -> 57 images/s at batch 32 on
-        # 2 cores). Outputs agree with timm's own model to ~1e-5.
-        model = fold_batch_norms(imagenet_model())
-        _MODELS["image"] = model.to(memory_format=torch.channels_last)
-    return _MODELS["image"]
+            # Folded batch norms (a third less CPU time) and channels-last memory
+            # (about twice as fast on CPU; measured 28 -> 57 images/s at batch 32 on
+            # 2 cores). Outputs agree with timm's own model to ~1e-5.
+            model = fold_batch_norms(imagenet_model())
+            _MODELS["image"] = model.to(memory_format=torch.channels_last)
+        return _MODELS["image"]
 
 
 def _load_text_model():
-    if "text" not in _MODELS:
-        from sentence_transformers import SentenceTransformer
+    with _MODEL_LOCK:
+        if "text" not in _MODELS:
+            from sentence_transformers import SentenceTransformer
 
-        try:  # the per-tensor "Loading weights" bar is noise for a local folder
-            from transformers.utils import logging as hf_logging
+            try:  # the per-tensor "Loading weights" bar is noise for a local folder
+                from transformers.utils import logging as hf_logging
 
-            hf_logging.disable_progress_bar()
-        except ImportError:
-            pass
-        _MODELS["text"] = SentenceTransformer(str(text_model_dir()), device="cpu", local_files_only=True)
-    return _MODELS["text"]
+                hf_logging.disable_progress_bar()
+            except ImportError:
+                pass
+            model = SentenceTransformer(str(text_model_dir()), device="cpu", local_files_only=True)
+            dim = getattr(model, "get_embedding_dimension", None) or model.get_sentence_embedding_dimension
+            if int(dim()) != TEXT_DIM:
+                raise EncoderUnavailable(f"bundled encoder: {text_model_dir()} gives {int(dim())}-d vectors, expected {TEXT_DIM}")
+            _MODELS["text"] = model
+        return _MODELS["text"]
 
 
 class BundledEncoder:
@@ -374,17 +420,44 @@ class BundledEncoder:
         )
         self.logit_scale = BUNDLED_LOGIT_SCALE
         self.logit_bias = BUNDLED_LOGIT_BIAS
-        self.model = _load_image_model()
-        self.text_model = _load_text_model()
-        from timm.data import create_transform, resolve_data_config
-
-        self._data_config = resolve_data_config({}, model=self.model)
-        self._transform = create_transform(**self._data_config)
-        self.input_size = int(self._data_config["input_size"][-1])
-        dim = getattr(self.text_model, "get_embedding_dimension", None) or self.text_model.get_sentence_embedding_dimension
-        self.text_dim = int(dim())
-        self.class_names = imagenet_class_names()
+        self.input_size = IMAGE_INPUT_SIZE
+        self.text_dim = TEXT_DIM
+        self._transform = None
+        self._class_names = None
         self.model_name = f"{IMAGE_ARCH} (ImageNet) + {TEXT_MODEL}, ConSE T={self.top_t} (temperature {self.temperature:g}), classes named by {phrasing}"
+
+    # -- models, loaded on first use (shared by every instance in the process) --
+
+    @property
+    def model(self):
+        """The image model (folded EfficientNet-Lite0), loaded on first use."""
+        return _load_image_model()
+
+    @property
+    def text_model(self):
+        """The sentence encoder, loaded on first use."""
+        return _load_text_model()
+
+    @property
+    def class_names(self) -> tuple[str, ...]:
+        """The ImageNet class descriptions the label phrases are made from (settable, for tests)."""
+        return self._class_names if self._class_names is not None else imagenet_class_names()
+
+    @class_names.setter
+    def class_names(self, names) -> None:
+        self._class_names = tuple(names)
+
+    def _eval_transform(self):
+        if self._transform is None:
+            from timm.data import create_transform, resolve_data_config
+
+            config = resolve_data_config({}, model=self.model)
+            if int(config["input_size"][-1]) != self.input_size:
+                raise EncoderUnavailable(
+                    f"bundled encoder: timm's eval input is {config['input_size'][-1]} px, expected {self.input_size}"
+                )
+            self._transform = create_transform(**config)
+        return self._transform
 
     # -- protocol -----------------------------------------------------------
 
@@ -392,7 +465,7 @@ class BundledEncoder:
         """One PIL image -> a normalised 3 x 224 x 224 tensor (timm's eval transform for this model)."""
         if image.mode != "RGB":
             image = image.convert("RGB")
-        return self._transform(image)
+        return self._eval_transform()(image)
 
     def encode_images(self, batch: "torch.Tensor") -> dict[str, np.ndarray]:
         """NCHW batch -> {"cluster": pooled CNN features, "joint": ConSE vectors}, L2-normalised float32."""
@@ -402,7 +475,15 @@ class BundledEncoder:
         return {"cluster": cluster.astype(np.float32), "joint": joint}
 
     def encode_texts(self, texts: list[str]) -> np.ndarray:
-        """Texts -> (m, 384) L2-normalised float32 vectors from all-MiniLM-L6-v2."""
+        """Texts -> (m, 384) L2-normalised float32 vectors from all-MiniLM-L6-v2.
+
+        Through the disk cache of this encoder's text vectors (``text_cache``):
+        the sentence encoder is loaded only for texts never embedded before.
+        """
+        return encode_texts_cached(self.id, list(texts), self._encode_texts, self.text_dim)
+
+    def _encode_texts(self, texts: list[str]) -> np.ndarray:
+        """Texts -> vectors with the sentence encoder itself (no cache)."""
         import torch
 
         texts = list(texts)
@@ -462,7 +543,7 @@ class BundledEncoder:
                 path = label_cache_dir() / f"bundled-label-embeddings-v{BUNDLED_VERSION}-{self.phrasing}-{key}.npy"
                 vectors = _read_vectors(path, (len(groups), self.text_dim))
                 if vectors is None:
-                    encoded = self.encode_texts(flat).astype(np.float64)
+                    encoded = self._encode_texts(flat).astype(np.float64)
                     rows, start = [], 0
                     for group in groups:
                         mean = encoded[start : start + len(group)].mean(axis=0)

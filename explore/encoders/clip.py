@@ -31,7 +31,8 @@ from urllib.parse import urlparse
 
 import numpy as np
 
-from explore.encoders.base import EncoderUnavailable, file_digest
+from explore.encoders.base import EncoderUnavailable, file_digest, model_cache_dir
+from explore.encoders.text_cache import encode_texts_cached
 from explore.study import DEFAULT_CLIP_MODEL as DEFAULT_MODEL
 from explore.study import DEFAULT_CLIP_PRETRAINED as DEFAULT_PRETRAINED
 
@@ -334,19 +335,75 @@ def unavailable_message(model: str, pretrained: str | None, lookup: WeightsLooku
     return "\n".join(lines)
 
 
+# -- facts about loaded weights, noted so that a later run need not load them -------
+
+
+def _open_clip_version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("open_clip_torch")
+    except PackageNotFoundError:
+        return "unknown"
+
+
+def facts_path(key: str) -> Path:
+    """The file noting the facts of the weights behind ``key`` (``ClipEncoder._facts_key``)."""
+    return model_cache_dir() / "clip-facts" / f"{hashlib.sha256(key.encode()).hexdigest()[:24]}.json"
+
+
+def read_facts(key: str) -> dict | None:
+    """The facts noted for ``key`` (input size, logit scale, ...), or None when none are usable."""
+    import json
+
+    try:
+        record = json.loads(facts_path(key).read_text(encoding="utf-8"))
+        facts = record["facts"]
+        if record.get("key") != key or set(facts) != FACT_NAMES:
+            return None
+        return facts
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+
+
+def write_facts(key: str, facts: dict) -> None:
+    """Note the facts atomically; a failure only means the next run loads the model to learn them."""
+    import json
+
+    path = facts_path(key)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp.write_text(json.dumps({"key": key, "facts": facts}), encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError:
+        tmp.unlink(missing_ok=True)
+
+
+#: What is noted about a loaded clip model: all a run needs before it embeds anything.
+FACT_NAMES = {"reparameterized", "input_size", "logit_scale", "embed_dim"}
+
+
 class ClipEncoder:
     """An open_clip model on CPU.
 
     Parameters
     ----------
-    model : open_clip model name (``open_clip.list_models()``), default ViT-B-32.
+    model : open_clip model name (``open_clip.list_models()``), default
+        ``DEFAULT_MODEL`` (see ``catalogue.choose_default``).
     pretrained : open_clip pretrained tag (``open_clip.list_pretrained()``),
-        default laion2b_s34b_b79k. With ``weights``, only the tag's
+        default ``DEFAULT_PRETRAINED``. With ``weights``, only the tag's
         preprocessing and activation settings are used (when the tag is known).
     weights : local checkpoint file (a state dict saved from this model, or an
         open_clip/OpenAI checkpoint); else ``EXPLORE_CLIP_WEIGHTS``.
     allow_download : try open_clip's download when nothing is found locally
         (never when ``HF_HUB_OFFLINE`` is set or the host does not answer).
+
+    The first time given weights are used here the model is loaded at once (a
+    bad file fails now, not mid-run), and what a run needs before embedding
+    (input size, logit scale, embedding size, reparameterisation) is noted in
+    ``model_cache_dir()/clip-facts``. Later, the model is loaded only when an
+    image or a text not yet cached must be embedded.
 
     Raises
     ------
@@ -382,61 +439,10 @@ class ClipEncoder:
                 )
             download = True
 
-        import open_clip
-        import torch
-
-        kwargs = {}
-        name = model  # what open_clip is asked to build
-        if lookup.source == "dir":
-            name, source = f"local-dir:{lookup.path}", None
-        elif download:
-            source = None if ":" in model else pretrained  # open_clip downloads into its cache
-        else:
-            # A local file (named by the user, or the tag's file in a cache) is
-            # loaded directly, with no hub call. open_clip applies a tag's
-            # preprocessing and activation only when it resolves the tag itself,
-            # so pass them on when the tag is known for this model.
-            source = str(lookup.path)
-            cfg = open_clip.get_pretrained_cfg(model, pretrained) if pretrained and ":" not in model else {}
-            if cfg:
-                kwargs = {
-                    "image_mean": cfg.get("mean"),
-                    "image_std": cfg.get("std"),
-                    "image_interpolation": cfg.get("interpolation"),
-                    "image_resize_mode": cfg.get("resize_mode"),
-                    "force_quick_gelu": bool(cfg.get("quick_gelu", False)),
-                }
-        try:
-            net, _, preprocess = open_clip.create_model_and_transforms(name, pretrained=source, device="cpu", **kwargs)
-        except EncoderUnavailable:
-            raise
-        except Exception as exc:  # bad file, wrong architecture, failed download
-            raise EncoderUnavailable(
-                unavailable_message(model, pretrained, lookup, f"open_clip could not load {source}: {exc}")
-            ) from exc
-        net.eval()
-        # MobileCLIP's image towers are trained with parallel branches that fold
-        # into single convolutions for inference; its authors reparameterise
-        # before use (Vasu et al., 2024, MobileCLIP; apple/ml-mobileclip README).
-        # timm's reparameterize_model walks the same ``reparameterize()`` hooks.
-        self.reparameterized = any(hasattr(m, "reparameterize") for m in net.modules())
-        if self.reparameterized:
-            from timm.utils import reparameterize_model
-
-            net = reparameterize_model(net, inplace=True).eval()
-        self.model = net
         self.model_name = model
         self.pretrained = None if lookup.source == "file" else pretrained
         self.weights = lookup.path if lookup.path is not None else None
-        self._preprocess = preprocess
-        self.tokenizer = open_clip.get_tokenizer(name)
-        size = getattr(net.visual, "image_size", 224)
-        self.input_size = int(size[0] if isinstance(size, (tuple, list)) else size)
-        with torch.no_grad():
-            self.logit_scale = float(net.logit_scale.exp())
-        # A model's own logit bias (SigLIP-style models) adds the same amount to
-        # both sides of a prompt pair, so it cancels in the two-way softmax.
-        self.logit_bias = 0.0
+        self.weights_source = str(lookup.path) if lookup.path else f"downloaded ({pretrained})"
         if lookup.source == "file":
             tag = "file-" + file_digest(lookup.path)[:12]
         elif lookup.source == "dir":
@@ -449,8 +455,127 @@ class ClipEncoder:
             tag = str(pretrained)
         # the weights digest identifies a folder, not its location
         label = "local-dir" if model.startswith("local-dir:") else model.replace(":", "-").replace("/", "-")
-        self.id = f"clip-v{CLIP_VERSION}-{label}-{tag}" + ("-rep" if self.reparameterized else "")
-        self.weights_source = str(lookup.path) if lookup.path else f"downloaded ({pretrained})"
+        self._id_base = f"clip-v{CLIP_VERSION}-{label}-{tag}"
+        self._lookup, self._download, self._pretrained_arg = lookup, download, pretrained
+        self._net = None
+        self._load_lock = threading.Lock()
+        facts = None if download else read_facts(self._facts_key())
+        if facts is None:  # first use of these weights here (or a download): load now, note the facts
+            self._load()
+        else:  # the model is loaded on first use (a cached re-run may never need it)
+            self._set_facts(facts)
+
+    # -- the model, loaded on first use -----------------------------------------
+
+    def _facts_key(self) -> str:
+        """What the facts noted for these weights depend on: the id, the weights file's
+        size and time, and open_clip's version (which builds the architecture)."""
+        path = self._lookup.path
+        stamp = ""
+        if path is not None and Path(path).is_file():
+            st = os.stat(path)
+            stamp = f"{st.st_size}-{st.st_mtime_ns}"
+        return f"{self._id_base}|{path}|{stamp}|open_clip {_open_clip_version()}"
+
+    def _set_facts(self, facts: dict) -> None:
+        self.reparameterized = bool(facts["reparameterized"])
+        self.input_size = int(facts["input_size"])
+        self.logit_scale = float(facts["logit_scale"])
+        self.embed_dim = int(facts["embed_dim"])
+        # A model's own logit bias (SigLIP-style models) adds the same amount to
+        # both sides of a prompt pair, so it cancels in the two-way softmax.
+        self.logit_bias = 0.0
+        self.id = self._id_base + ("-rep" if self.reparameterized else "")
+
+    def _load(self) -> None:
+        """Build the open_clip model (and its transform and tokenizer); note its facts on disk."""
+        with self._load_lock:
+            if self._net is not None:
+                return
+            import open_clip
+            import torch
+
+            model, lookup, pretrained = self.model_name, self._lookup, self._pretrained_arg
+            kwargs = {}
+            name = model  # what open_clip is asked to build
+            if lookup.source == "dir":
+                name, source = f"local-dir:{lookup.path}", None
+            elif self._download:
+                source = None if ":" in model else pretrained  # open_clip downloads into its cache
+            else:
+                # A local file (named by the user, or the tag's file in a cache) is
+                # loaded directly, with no hub call. open_clip applies a tag's
+                # preprocessing and activation only when it resolves the tag itself,
+                # so pass them on when the tag is known for this model.
+                source = str(lookup.path)
+                cfg = open_clip.get_pretrained_cfg(model, pretrained) if pretrained and ":" not in model else {}
+                if cfg:
+                    kwargs = {
+                        "image_mean": cfg.get("mean"),
+                        "image_std": cfg.get("std"),
+                        "image_interpolation": cfg.get("interpolation"),
+                        "image_resize_mode": cfg.get("resize_mode"),
+                        "force_quick_gelu": bool(cfg.get("quick_gelu", False)),
+                    }
+            try:
+                net, _, preprocess = open_clip.create_model_and_transforms(name, pretrained=source, device="cpu", **kwargs)
+            except EncoderUnavailable:
+                raise
+            except Exception as exc:  # bad file, wrong architecture, failed download
+                raise EncoderUnavailable(
+                    unavailable_message(model, pretrained, lookup, f"open_clip could not load {source}: {exc}")
+                ) from exc
+            net.eval()
+            # MobileCLIP's image towers are trained with parallel branches that fold
+            # into single convolutions for inference; its authors reparameterise
+            # before use (Vasu et al., 2024, MobileCLIP; apple/ml-mobileclip README).
+            # timm's reparameterize_model walks the same ``reparameterize()`` hooks.
+            reparameterized = any(hasattr(m, "reparameterize") for m in net.modules())
+            if reparameterized:
+                from timm.utils import reparameterize_model
+
+                net = reparameterize_model(net, inplace=True).eval()
+            size = getattr(net.visual, "image_size", 224)
+            with torch.no_grad():
+                tokenizer = open_clip.get_tokenizer(name)
+                facts = {
+                    "reparameterized": reparameterized,
+                    "input_size": int(size[0] if isinstance(size, (tuple, list)) else size),
+                    "logit_scale": float(net.logit_scale.exp()),
+                    "embed_dim": int(net.encode_text(tokenizer([""])).shape[-1]),
+                }
+            if getattr(self, "id", None) is not None and getattr(self, "logit_scale", None) is not None:
+                known = {"reparameterized": self.reparameterized, "input_size": self.input_size,
+                         "logit_scale": self.logit_scale, "embed_dim": self.embed_dim}
+                if known != facts:  # the noted facts no longer describe these weights: never mix them
+                    raise EncoderUnavailable(
+                        f"clip encoder: the model loaded from {self.weights_source} differs from what was noted "
+                        f"for it ({known} against {facts}); delete {facts_path(self._facts_key())} and run again"
+                    )
+            self._set_facts(facts)
+            self._preprocess_fn = preprocess
+            self._tokenizer = tokenizer
+            self._net = net
+            write_facts(self._facts_key(), facts)
+
+    @property
+    def model(self):
+        """The open_clip model, loaded on first use."""
+        if self._net is None:
+            self._load()
+        return self._net
+
+    @property
+    def tokenizer(self):
+        if self._net is None:
+            self._load()
+        return self._tokenizer
+
+    @property
+    def _preprocess(self):
+        if self._net is None:
+            self._load()
+        return self._preprocess_fn
 
     def preprocess(self, image: "Image.Image") -> "torch.Tensor":
         """One PIL image -> CHW tensor, with open_clip's own eval transform for this model."""
@@ -469,7 +594,15 @@ class ClipEncoder:
         return {"cluster": vectors, "joint": vectors}
 
     def encode_texts(self, texts: list[str]) -> np.ndarray:
-        """Texts -> (m, d) L2-normalised text embeddings (open_clip tokenizer + encode_text)."""
+        """Texts -> (m, d) L2-normalised text embeddings (open_clip tokenizer + encode_text).
+
+        Through the disk cache of this encoder's text vectors (``text_cache``):
+        the model is loaded only for texts never embedded before.
+        """
+        return encode_texts_cached(self.id, list(texts), self._encode_texts, self.embed_dim)
+
+    def _encode_texts(self, texts: list[str]) -> np.ndarray:
+        """Texts -> vectors with the model itself (no cache)."""
         import torch
 
         texts = list(texts)
@@ -480,5 +613,5 @@ class ClipEncoder:
                 features = self.model.encode_text(tokens)
                 out.append(torch.nn.functional.normalize(features.float(), dim=-1).numpy())
         if not out:
-            return self.encode_texts([""])[:0]
+            return np.zeros((0, self.embed_dim), dtype=np.float32)
         return np.ascontiguousarray(np.concatenate(out), dtype=np.float32)

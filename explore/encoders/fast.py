@@ -194,7 +194,7 @@ class OnnxRuntimeEncoder:
     The tower (clip: ``model.visual``; bundled: pixels -> pooled features and
     ImageNet logits) is exported once with ``torch.onnx.export`` and kept in
     ``onnx_cache_dir()`` under a name derived from the exact encoder's id and
-    the torch version. Its id is the exact id plus ``-onnxruntime``, so its
+    the torch version, on first use. Its id is the exact id plus ``-onnxruntime``, so its
     vectors never share cache entries with the exact path's.
     ``benchmarks/fast_path.py`` measured it faster here with cosine >= 0.999
     (README "Fast path").
@@ -212,10 +212,7 @@ class OnnxRuntimeEncoder:
 
     def __init__(self, base):
         import hashlib
-        import os
         import threading
-
-        import torch
 
         ort = _require_onnxruntime()
         self.base = base
@@ -226,23 +223,30 @@ class OnnxRuntimeEncoder:
         self.id = f"{base.id}-onnxruntime" + (f"{ONNX_VERSION}" if ONNX_VERSION > 1 else "")
         self.model_name = getattr(base, "model_name", base.family)
         self.onnxruntime_version = ort.__version__
+        key = hashlib.sha256(f"{base.id}|{_torch_version()}|{ONNX_VERSION}".encode()).hexdigest()[:16]
+        self.onnx_path = onnx_cache_dir() / f"{base.family}-tower-{key}.onnx"
+        self._sessions: dict[int, object] = {}
+        self._lock = threading.Lock()
+
+    def _export(self) -> None:
+        """Export the exact encoder's tower once (called under the lock, on first use)."""
+        import os
+
+        path = self.onnx_path
+        if path.is_file():
+            return
+        base = self.base
         if base.family == "clip":
             tower, names = base.model.visual, ["embedding"]
         else:
             tower, names = BundledTower(base.model), ["pooled", "logits"]
-        key = hashlib.sha256(f"{base.id}|{torch.__version__}|{ONNX_VERSION}".encode()).hexdigest()[:16]
-        path = onnx_cache_dir() / f"{base.family}-tower-{key}.onnx"
-        if not path.is_file():
-            path.parent.mkdir(parents=True, exist_ok=True)
-            tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-            try:
-                export_onnx(tower, tmp, names, input_size=self.input_size)
-                os.replace(tmp, path)
-            finally:
-                tmp.unlink(missing_ok=True)
-        self.onnx_path = path
-        self._sessions: dict[int, object] = {}
-        self._lock = threading.Lock()
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+        try:
+            export_onnx(tower, tmp, names, input_size=self.input_size)
+            os.replace(tmp, path)
+        finally:
+            tmp.unlink(missing_ok=True)
 
     def __getattr__(self, name):  # weights, pretrained, label_embeddings, ...: the exact encoder's
         if name == "base":
@@ -255,6 +259,7 @@ class OnnxRuntimeEncoder:
 
         threads = max(1, torch.get_num_threads())
         with self._lock:
+            self._export()
             if threads not in self._sessions:
                 self._sessions[threads] = onnx_session(self.onnx_path, threads)
             return self._sessions[threads]
@@ -272,6 +277,18 @@ class OnnxRuntimeEncoder:
 
     def encode_texts(self, texts: list[str]) -> np.ndarray:
         return self.base.encode_texts(texts)
+
+
+def _torch_version() -> str:
+    """torch's version without importing it (the exported tower depends on it)."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("torch")
+    except PackageNotFoundError:
+        import torch
+
+        return torch.__version__
 
 
 def with_runtime(encoder, runtime: str):

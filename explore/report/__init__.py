@@ -66,18 +66,21 @@ def write_report(output_folder: str | Path, study=None, blur_faces: bool | None 
         raise ReportError(f"report.max_thumbnails is {cap}; expected 0 or more")
     from explore.report.findings import findings_table
 
+    from explore.output import write_tables
+
     findings = findings_table(out.tables)
-    for suffix, write in ((".csv", lambda t, p: t.to_csv(p, index=False)), (".parquet", lambda t, p: t.to_parquet(p, index=False))):
-        tmp = folder / f"{FINDINGS_NAME}{suffix}.tmp"
-        write(findings, tmp)
-        tmp.replace(folder / f"{FINDINGS_NAME}{suffix}")
+    # as every table: atomic, formula-guarded CSV, stamped with the run the folder holds
+    write_tables(folder, {FINDINGS_NAME: findings}, run_id=(out.run or {}).get("run_id") or None)
     out.tables[FINDINGS_NAME] = findings
     html = build_page(out, thumbnail_px=px, max_thumbnails=cap, seed=seed, cache_dir=folder / "cache",
                       blur_faces=blur)
     target = folder / REPORT_NAME
     tmp = target.with_suffix(".html.tmp")
-    tmp.write_text(html, encoding="utf-8")
-    tmp.replace(target)
+    try:
+        tmp.write_text(html, encoding="utf-8")
+        tmp.replace(target)
+    finally:
+        tmp.unlink(missing_ok=True)
     return target
 
 

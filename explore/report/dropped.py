@@ -1,5 +1,8 @@
 """Report section: photos left out or flagged (reposts, near-duplicates, commercial posts), with thumbnails.
 
+Reposts are the brand's own photos found in its consumer set: the same file
+(collect) or a near-copy (content hash and image vectors, ``explore.duplicates``).
+
 Counts per brand x source of each kind, what was excluded and by which study
 key (and its default), and a few example pictures of each kind.
 """
@@ -8,9 +11,15 @@ from __future__ import annotations
 
 import pandas as pd
 
+from explore.collect.flags import is_near_copy, repost_description
+from explore.collect.hashing import NEAR_DUPLICATE_BITS
+from explore.duplicates import MIN_COSINE
+
 #: Kinds shown: (name, rows selected, study key, its default, what the default does).
 KINDS = (
-    ("repost", "reposts of the brand's own photos in its consumer set", "images.reposts"),
+    ("repost", "the brand's own photos re-posted in its consumer set: the same file, or a near-copy "
+     f"(recompressed, resized or cropped: content hash within {NEAR_DUPLICATE_BITS} bits of 64 and image vectors "
+     f"agreeing, cosine >= {MIN_COSINE})", "images.reposts"),
     ("near_duplicate", "near-identical copies within a brand and source (vectors confirmed)", "images.near_duplicates"),
     ("commercial", "consumer photos that look like shop listings, product shots, screenshots or adverts",
      "images.commercial_posts"),
@@ -52,13 +61,24 @@ def dropped_section(images: pd.DataFrame, settings: dict) -> dict:
             rows.append({"brand": brand, "source": source, "excluded": int(g["_excluded"].sum()),
                          "kept": int((~g["_excluded"]).sum())})
         examples = []
+        path_of = images.set_index("image_id")["relpath"].to_dict() if "relpath" in images else {}
         for r in hit.head(EXAMPLES).to_dict("records"):
-            reason = str(r.get("reason") or "") if r["_excluded"] else str(r.get("commercial_reason") or "flagged, counted")
+            if r["_excluded"]:
+                reason = str(r.get("reason") or "")
+            elif kind == "repost":
+                reason = repost_description(r, path_of) + ", counted"
+            else:
+                reason = str(r.get("commercial_reason") or "flagged, counted")
             examples.append({"image_id": str(r["image_id"]), "relpath": str(r.get("relpath", "")), "brand": str(r["brand"]),
                              "source": str(r["source"]), "reason": reason,
                              "excluded": bool(r["_excluded"])})
             example_ids.append(str(r["image_id"]))
+        note = ""
+        if kind == "repost":
+            near = int(is_near_copy(hit).sum())
+            note = (f"Of these {len(hit)}: {near} near-cop{'y' if near == 1 else 'ies'} (not the same file), "
+                    f"{len(hit) - near} the same file as the owned photo.")
         kinds.append({"kind": kind, "what": what, "key": key,
                       "setting": image_settings.get(key.split(".")[1], "exclude"),
-                      "rows": rows, "examples": examples})
+                      "rows": rows, "examples": examples, "note": note})
     return {"kinds": kinds, "example_ids": example_ids}
