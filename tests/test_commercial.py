@@ -35,10 +35,9 @@ FINGERPRINT_6_7 = "0400af9ddadaf164"
 #: Kinds the plain-border signal is meant to catch, and ordinary photos it should leave alone.
 PLAIN_KINDS = ("product on plain background", "shop listing", "screenshot of text")
 ORDINARY_KINDS = ("photo crop", "object in a photo", "photo with a small caption")
-#: The bundled encoder's median prompt margin on outside-commercial-v2 is -0.041 for its
-#: ordinary photos, -0.032 for its commercial kinds and -0.036 over all (bundled-v5; -0.154 and
-#: -0.147 with v4, when this was -0.15); the fake encoder below gives every row the overall
-#: median, so the flags here follow the plain-border share alone.
+#: A fixed prompt margin for the tests that only need the mechanics (a fake encoder gives every
+#: row this margin, so the flags follow the plain-border share alone); the flag's own tests use
+#: the bundled encoder's real vectors of the outside examples.
 MARGIN = -0.036
 
 
@@ -101,7 +100,21 @@ def fake_encode_texts(texts):
     return out
 
 
-def write_rows(tmp_path):
+@lru_cache(maxsize=1)
+def bundled_joint():
+    """The bundled encoder and its joint vectors of the outside examples (the real flag, end to end)."""
+    import torch
+
+    from explore.encoders.bundled import BundledEncoder
+
+    encoder = BundledEncoder()
+    batch = torch.stack([encoder.preprocess(im.convert("RGB")) for im in outside_examples()[0]])
+    return encoder, encoder.encode_images(batch)["joint"]
+
+
+def write_rows(tmp_path, real: bool = False):
+    """Consumer and owned rows of the outside examples; ``real``: the bundled encoder's vectors
+    (returned with its text function), else every row at ``MARGIN`` under ``fake_encode_texts``."""
     images, labels, kinds, _ = outside_examples()
     rows = []
     for k, (im, lab, kind) in enumerate(zip(images, labels, kinds)):
@@ -111,6 +124,12 @@ def write_rows(tmp_path):
             rows.append({"image_id": f"{source}{k}", "path": str(path), "brand": "Fizzwick", "source": source,
                          "status": "ok", "reason": "", "label": int(lab), "kind": kind})
     table = pd.DataFrame(rows)
+    if real:
+        encoder, vectors = bundled_joint()
+        joint = np.repeat(vectors, 2, axis=0)  # rows alternate consumer, owned per image
+        emb = Embeddings(image_ids=table["image_id"].tolist(), encoder_id=encoder.id, cluster=joint.copy(),
+                         joint=joint)
+        return table, emb, encoder.encode_texts
     joint = np.zeros((len(table), 4), np.float32)
     # a unit vector whose first two components differ by MARGIN
     joint[:, 0] = (MARGIN + np.sqrt(2 - MARGIN**2)) / 2
@@ -135,28 +154,28 @@ def works(out) -> bool:
 def test_flags_follow_the_plain_border_and_the_threshold(tmp_path, monkeypatch):
     """Outside examples (outside-commercial-v2): plain-background kinds flagged, ordinary photos not.
 
-    The same check fails when the plain-border signal's direction is flipped or the threshold is ignored.
+    The bundled encoder's own vectors and prompts (the flag as a run uses it). The same check
+    fails when the plain-border signal's direction is flipped or the threshold is ignored.
     """
-    table, emb = write_rows(tmp_path)
-    assert abs(float(commercial.prompt_margin(emb.joint[:1], fake_encode_texts)[0]) - MARGIN) < 1e-5
-    out, _, _ = commercial.flag_commercial(table, emb, fake_encode_texts, mode="keep")
+    table, emb, encode_texts = write_rows(tmp_path, real=True)
+    out, _, _ = commercial.flag_commercial(table, emb, encode_texts, mode="keep")
     assert works(out), flag_shares(out)
     consumer = out[out["source"] == "consumer"]
     assert (consumer["commercial_flagged"] == (consumer["commercial_score"] >= commercial.THRESHOLD)).all()
 
     monkeypatch.setattr(commercial, "COEF_PLAIN", -commercial.COEF_PLAIN)
-    flipped, _, _ = commercial.flag_commercial(table, emb, fake_encode_texts, mode="keep")
+    flipped, _, _ = commercial.flag_commercial(table, emb, encode_texts, mode="keep")
     assert not works(flipped), flag_shares(flipped)
     monkeypatch.undo()
     monkeypatch.setattr(commercial, "THRESHOLD", 0.0)
-    ignored, _, _ = commercial.flag_commercial(table, emb, fake_encode_texts, mode="keep")
+    ignored, _, _ = commercial.flag_commercial(table, emb, encode_texts, mode="keep")
     assert not works(ignored), flag_shares(ignored)
 
 
 @needs_set
 def test_exclude_drops_flagged_consumer_rows_only(tmp_path):
-    table, emb = write_rows(tmp_path)
-    out, kept, notes = commercial.flag_commercial(table, emb, fake_encode_texts, mode="exclude")
+    table, emb, encode_texts = write_rows(tmp_path, real=True)
+    out, kept, notes = commercial.flag_commercial(table, emb, encode_texts, mode="exclude")
     consumer = out[out["source"] == "consumer"]
     owned = out[out["source"] == "owned"]
     flagged = consumer["commercial_flagged"].astype(bool)
@@ -170,7 +189,7 @@ def test_exclude_drops_flagged_consumer_rows_only(tmp_path):
     assert set(kept.image_ids) == set(out.loc[out["status"] == "ok", "image_id"])
     assert f"{int(flagged.sum())} of {len(consumer)} consumer photos flagged" in notes[0]
 
-    kept_out, kept_emb, _ = commercial.flag_commercial(table, emb, fake_encode_texts, mode="keep")
+    kept_out, kept_emb, _ = commercial.flag_commercial(table, emb, encode_texts, mode="keep")
     assert (kept_out["status"] == "ok").all()
     assert len(kept_emb) == len(emb)
     assert kept_out["commercial_flagged"].sum() == flagged.sum()
